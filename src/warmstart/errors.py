@@ -1,0 +1,45 @@
+"""The error hierarchy of warmstart.
+
+Every error a user can act on derives from :class:`WarmstartError` *and* from the matching
+built-in exception, so ``except ValueError`` in user code keeps working. Messages name the file,
+the bad value and what was expected.
+"""
+from __future__ import annotations
+
+__all__ = [
+    "WarmstartError",
+    "VolumeReadError",
+    "SourceNotFoundError",
+    "UnsupportedFormatError",
+    "IntensityError",
+    "RecipeError",
+    "CorpusError",
+]
+
+
+class WarmstartError(Exception):
+    """Base class of every error warmstart raises on purpose."""
+
+
+class VolumeReadError(WarmstartError, ValueError):
+    """A file exists but cannot be read as a grayscale volume (corrupt, truncated, RGB, ...)."""
+
+
+class SourceNotFoundError(WarmstartError, FileNotFoundError):
+    """A path named as a source does not exist."""
+
+
+class UnsupportedFormatError(VolumeReadError):
+    """The path is not in any format warmstart reads."""
+
+
+class IntensityError(WarmstartError, ValueError):
+    """An intensity reference cannot be fitted or applied (constant data, no finite voxel, ...)."""
+
+
+class RecipeError(WarmstartError, ValueError):
+    """A recipe file or override has an unknown key, a wrong type or a bad value."""
+
+
+class CorpusError(WarmstartError, ValueError):
+    """A corpus store is missing, inconsistent, or cannot be built or merged as asked."""
