@@ -1,0 +1,281 @@
+"""Settings of the corpus stage: frozen dataclasses that travel inside every store they build.
+
+Each has ``to_dict``/``from_dict``; ``from_dict`` rejects unknown keys and wrong types with the
+key's name (recipes are read through :mod:`warmstart.recipe`, which adds the file name).
+"""
+from __future__ import annotations
+
+import dataclasses
+import types
+import typing
+from dataclasses import dataclass, field, fields
+from typing import Any, Mapping
+
+from ..errors import RecipeError
+from ..intensity import IntensitySettings
+
+__all__ = ["ReadSettings", "SamplingSettings", "FilterSettings", "StoreSettings", "CorpusSettings", "settings_from_dict"]
+
+
+@dataclass(frozen=True)
+class ReadSettings:
+    """How sources are opened.
+
+    Parameters
+    ----------
+    rgb : {"refuse", "luminance"}
+        Colour files are refused unless converted to luminance.
+    channel : int, optional
+        Channel of multi-channel files.
+    voxel_size_um : (float, float, float), optional
+        (Z, Y, X) in µm for every source, overriding file metadata (use for ``.npy`` archives).
+    """
+
+    rgb: str = "refuse"
+    channel: int | None = None
+    voxel_size_um: tuple[float, float, float] | None = None
+
+    def __post_init__(self) -> None:
+        if self.rgb not in ("refuse", "luminance"):
+            raise RecipeError(f"read.rgb must be 'refuse' or 'luminance', got {self.rgb!r}")
+
+
+@dataclass(frozen=True)
+class SamplingSettings:
+    """Where patches come from.
+
+    Parameters
+    ----------
+    patch_size : int
+        Output patch side in pixels (after resampling).
+    axes : str
+        Slicing axes, any of ``Z``, ``Y``, ``X`` (``"ZYX"`` slices along all three).
+    channels : int
+        Adjacent slices stacked as channels (2.5-D); odd, 1 for plain 2-D patches.
+    target_voxel_um : float, optional
+        Resample every source to this voxel size (µm) where its voxel size is known.
+    scale_factor : float
+        Downscale factor used where no target is set or a voxel size is unknown (2 = half size).
+    mode : {"grid", "random"}
+        Regular grid (``stride``, ``slice_stride``) or ``count`` random positions per source.
+    stride : int, optional
+        Grid step in output pixels; default ``patch_size`` (no overlap).
+    slice_stride : int
+        Grid step between slices, in output slices.
+    count : int
+        Random mode: positions drawn per source.
+    max_per_source : int
+        Quota: at most this many planned positions per source (a seeded subsample beyond it).
+    seed : int
+    """
+
+    patch_size: int = 128
+    axes: str = "Z"
+    channels: int = 1
+    target_voxel_um: float | None = None
+    scale_factor: float = 1.0
+    mode: str = "grid"
+    stride: int | None = None
+    slice_stride: int = 8
+    count: int = 256
+    max_per_source: int = 2000
+    seed: int = 0
+
+    def __post_init__(self) -> None:
+        if self.patch_size < 8:
+            raise RecipeError(f"sampling.patch_size must be >= 8, got {self.patch_size}")
+        if not self.axes or any(a not in "ZYX" for a in self.axes) or len(set(self.axes)) != len(self.axes):
+            raise RecipeError(f"sampling.axes must be distinct letters of 'ZYX', got {self.axes!r}")
+        if self.channels < 1 or self.channels % 2 == 0:
+            raise RecipeError(f"sampling.channels must be odd and >= 1, got {self.channels}")
+        if self.mode not in ("grid", "random"):
+            raise RecipeError(f"sampling.mode must be 'grid' or 'random', got {self.mode!r}")
+        if not self.scale_factor > 0 or (self.target_voxel_um is not None and not self.target_voxel_um > 0):
+            raise RecipeError("sampling.scale_factor and sampling.target_voxel_um must be positive")
+        for name in ("slice_stride", "count", "max_per_source"):
+            if getattr(self, name) < 1:
+                raise RecipeError(f"sampling.{name} must be >= 1, got {getattr(self, name)}")
+        if self.stride is not None and self.stride < 1:
+            raise RecipeError(f"sampling.stride must be >= 1, got {self.stride}")
+
+
+@dataclass(frozen=True)
+class FilterSettings:
+    """Which patches are dropped (all in normalized intensity units).
+
+    Parameters
+    ----------
+    min_std : float
+        Drop a patch whose standard deviation is below this (nearly constant). 0 disables.
+    background_level : float, optional
+        A pixel at or below this is background. Default: per source, the normalized 0.5th
+        percentile plus 10 % of the normalized 0.5-99.5 percentile range.
+    max_background_fraction : float
+        Drop a patch with more background pixels than this fraction. 1 disables.
+    duplicate_threshold : float
+        Drop a patch whose RMS difference from the last kept patch at the same position one
+        slice step before is below this fraction of that patch's standard deviation. 0 disables.
+    """
+
+    min_std: float = 0.02
+    background_level: float | None = None
+    max_background_fraction: float = 0.95
+    duplicate_threshold: float = 0.05
+
+    def __post_init__(self) -> None:
+        if self.min_std < 0 or self.duplicate_threshold < 0:
+            raise RecipeError("filters.min_std and filters.duplicate_threshold must be >= 0")
+        if not 0 < self.max_background_fraction <= 1:
+            raise RecipeError(f"filters.max_background_fraction must be in (0, 1], got {self.max_background_fraction}")
+
+
+@dataclass(frozen=True)
+class StoreSettings:
+    """How patches are stored.
+
+    Parameters
+    ----------
+    dtype : {"float16", "uint16"}
+        float16 keeps 11 significant bits (relative error <= 2^-11); uint16 maps
+        ``uint16_range`` linearly to 0..65535 (absolute error <= half a step; values outside are
+        clipped and counted).
+    uint16_range : (float, float)
+        Normalized range covered by uint16 codes.
+    chunk_patches : int
+        Patches per zarr chunk (the unit of reading in pretraining).
+    histogram_range : (float, float), optional
+        Range of the 256-bin corpus histogram; default by scheme ([-0.5, 1.5], or [-5, 5] for
+        z-score).
+    """
+
+    dtype: str = "float16"
+    uint16_range: tuple[float, float] = (-1.0, 2.0)
+    chunk_patches: int = 256
+    histogram_range: tuple[float, float] | None = None
+
+    def __post_init__(self) -> None:
+        if self.dtype not in ("float16", "uint16"):
+            raise RecipeError(f"store.dtype must be 'float16' or 'uint16', got {self.dtype!r}")
+        if not self.uint16_range[0] < self.uint16_range[1]:
+            raise RecipeError(f"store.uint16_range must be increasing, got {self.uint16_range}")
+        if self.chunk_patches < 1:
+            raise RecipeError("store.chunk_patches must be >= 1")
+
+
+@dataclass(frozen=True)
+class CorpusSettings:
+    """Everything that decides which patches a build writes (the ``[corpus]`` recipe section).
+
+    ``workers`` and ``memory_mb`` change speed and memory, never the patches.
+    """
+
+    read: ReadSettings = field(default_factory=ReadSettings)
+    intensity: IntensitySettings = field(default_factory=IntensitySettings)
+    sampling: SamplingSettings = field(default_factory=SamplingSettings)
+    filters: FilterSettings = field(default_factory=FilterSettings)
+    store: StoreSettings = field(default_factory=StoreSettings)
+    workers: int = 1
+    memory_mb: int = 256
+
+    def __post_init__(self) -> None:
+        if self.workers < 1:
+            raise RecipeError(f"workers must be >= 1, got {self.workers}")
+        if self.memory_mb < 16:
+            raise RecipeError(f"memory_mb must be >= 16, got {self.memory_mb}")
+
+    def to_dict(self) -> dict[str, Any]:
+        return _plain(dataclasses.asdict(self))
+
+    def histogram_range(self) -> tuple[float, float]:
+        """Range of the corpus histogram: the store setting, else [-5, 5] for z-score and
+        [-0.5, 1.5] for the schemes that map two references to 0 and 1."""
+        if self.store.histogram_range is not None:
+            return self.store.histogram_range
+        return (-5.0, 5.0) if self.intensity.scheme == "zscore" else (-0.5, 1.5)
+
+    def identity(self) -> dict[str, Any]:
+        """The settings that decide the patches (without workers / memory)."""
+        d = self.to_dict()
+        d.pop("workers")
+        d.pop("memory_mb")
+        return d
+
+    @classmethod
+    def from_dict(cls, d: Mapping[str, Any], where: str = "corpus") -> "CorpusSettings":
+        return settings_from_dict(cls, d, where)
+
+
+def _plain(x: Any) -> Any:
+    if isinstance(x, dict):
+        return {k: _plain(v) for k, v in x.items()}
+    if isinstance(x, (list, tuple)):
+        return [_plain(v) for v in x]
+    return x
+
+
+def _check_type(value: Any, hint: Any, key: str) -> Any:
+    origin = typing.get_origin(hint)
+    args = typing.get_args(hint)
+    if origin in (typing.Union, types.UnionType):
+        if value is None and type(None) in args:
+            return None
+        errors = []
+        for a in args:
+            if a is type(None):
+                continue
+            try:
+                return _check_type(value, a, key)
+            except RecipeError as err:
+                errors.append(err)
+        raise errors[0] if errors else RecipeError(f"{key}: bad value {value!r}")
+    if origin is tuple:
+        if not isinstance(value, (list, tuple)) or len(value) != len(args):
+            raise RecipeError(f"{key} must be a list of {len(args)} values, got {value!r}")
+        return tuple(_check_type(v, a, f"{key}[{i}]") for i, (v, a) in enumerate(zip(value, args)))
+    if hint is float:
+        if isinstance(value, bool) or not isinstance(value, (int, float)):
+            raise RecipeError(f"{key} must be a number, got {value!r}")
+        return float(value)
+    if hint is int:
+        if isinstance(value, bool) or not isinstance(value, int):
+            raise RecipeError(f"{key} must be an integer, got {value!r}")
+        return value
+    if hint is bool:
+        if not isinstance(value, bool):
+            raise RecipeError(f"{key} must be true or false, got {value!r}")
+        return value
+    if hint is str:
+        if not isinstance(value, str):
+            raise RecipeError(f"{key} must be a string, got {value!r}")
+        return value
+    return value
+
+
+def settings_from_dict(cls: Any, d: Mapping[str, Any], where: str) -> Any:
+    """Build a settings dataclass from a mapping, checking keys and types recursively.
+
+    Raises
+    ------
+    RecipeError
+        Naming the dotted key (``corpus.sampling.patch_size``) of an unknown key or wrong type.
+    """
+    if not isinstance(d, Mapping):
+        raise RecipeError(f"{where} must be a table, got {d!r}")
+    hints = typing.get_type_hints(cls)
+    known = {f.name: f for f in fields(cls)}
+    unknown = sorted(set(d) - set(known))
+    if unknown:
+        raise RecipeError(f"unknown key {where}.{unknown[0]} (known: {', '.join(sorted(known))})")
+    kwargs = {}
+    for name, value in d.items():
+        hint = hints[name]
+        if dataclasses.is_dataclass(hint):
+            kwargs[name] = settings_from_dict(hint, value, f"{where}.{name}")
+        else:
+            kwargs[name] = _check_type(value, hint, f"{where}.{name}")
+    try:
+        return cls(**kwargs)
+    except RecipeError as err:
+        raise RecipeError(f"{where}: {err}") from err
+    except ValueError as err:  # IntensityError and friends
+        raise RecipeError(f"{where}: {err}") from err
