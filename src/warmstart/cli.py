@@ -1,0 +1,237 @@
+"""The ``warmstart`` command line: a thin layer over the library (one function per command).
+
+Exit status: 0 success; 1 an error the message explains; 2 bad usage; 3 finished but some
+sources were skipped (listed in the output).
+"""
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from typing import Any, Sequence
+
+__all__ = ["main", "build_parser"]
+
+CLINICAL_CAUTION = (
+    "caution: clinical images found. warmstart is for research use only and not for diagnosis; "
+    "follow your local regulation and the advice of qualified practitioners."
+)
+EXIT_ERROR = 1
+
+
+def _add_recipe_options(p: argparse.ArgumentParser) -> None:
+    g = p.add_argument_group("recipe")
+    g.add_argument("--recipe", metavar="FILE", help="recipe TOML file or shipped recipe name (smoke, cpu-lowres, ...)")
+    g.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE",
+                   help="override any recipe key, e.g. --set sampling.axes=ZYX (repeatable)")
+    g.add_argument("--rgb", choices=["refuse", "luminance"], help="colour files: refuse (default) or convert to luminance")
+    g.add_argument("--channel", type=int, metavar="N", help="channel to read from multi-channel files")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    from . import __version__
+
+    parser = argparse.ArgumentParser(
+        prog="warmstart",
+        description="Turn an archive of grayscale volumes into a self-supervised pretrained encoder.",
+    )
+    parser.add_argument("--version", action="version", version=f"warmstart {__version__}")
+    parser.add_argument("-q", "--quiet", action="store_true", help="no progress bars")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
+
+    scan = sub.add_parser("scan", help="list the volumes of an archive and what cannot be read",
+                          description="Open every source of ARCHIVE and print a table of format, shape, dtype, "
+                                      "voxel size and intensity range, with the files that cannot be used and why.")
+    scan.add_argument("archive", metavar="ARCHIVE")
+    scan.add_argument("--json", action="store_true", help="print the result as JSON")
+    _add_recipe_options(scan)
+
+    corpus = sub.add_parser("corpus", help="build, inspect and merge patch corpora")
+    csub = corpus.add_subparsers(dest="corpus_command", metavar="ACTION", required=True)
+    build = csub.add_parser("build", help="build a corpus store from an archive",
+                            description="Normalize every volume of ARCHIVE, sample informative patches and write "
+                                        "them with their provenance to the store CORPUS. Rerun to resume.")
+    build.add_argument("archive", metavar="ARCHIVE")
+    build.add_argument("-o", "--output", required=True, metavar="CORPUS", help="store folder (e.g. corpus.zarr)")
+    _add_recipe_options(build)
+    g = build.add_argument_group("common settings (shortcuts for --set)")
+    g.add_argument("--patch-size", type=int, metavar="PX")
+    g.add_argument("--axes", metavar="ZYX", help="slicing axes")
+    g.add_argument("--channels", type=int, metavar="K", help="adjacent slices per patch (2.5-D)")
+    g.add_argument("--target-voxel-um", type=float, metavar="UM", help="resample to this voxel size (micrometres)")
+    g.add_argument("--scale-factor", type=float, metavar="F", help="downscale factor where no target / voxel size")
+    g.add_argument("--scheme", choices=["percentile", "zscore", "two_point", "fixed"], help="intensity scheme")
+    g.add_argument("--seed", type=int)
+    g.add_argument("--workers", type=int, metavar="N", help="worker processes")
+    build.add_argument("--shard", metavar="I/N", help="build only shard I of N (merge shards with 'corpus merge')")
+    build.add_argument("--fresh", action="store_true", help="delete an existing store at CORPUS first")
+    build.add_argument("--no-report", action="store_true", help="skip writing report/")
+    build.add_argument("--json", action="store_true", help="print the result as JSON")
+
+    show = csub.add_parser("show", help="summarize a corpus and (re)write its report/")
+    show.add_argument("corpus", metavar="CORPUS")
+    show.add_argument("--no-report", action="store_true", help="only print, do not write report/")
+    show.add_argument("--json", action="store_true")
+
+    merge = csub.add_parser("merge", help="merge shard stores into one")
+    merge.add_argument("shards", nargs="+", metavar="SHARD")
+    merge.add_argument("-o", "--output", required=True, metavar="CORPUS")
+    merge.add_argument("--no-report", action="store_true")
+    merge.add_argument("--json", action="store_true")
+    return parser
+
+
+_SHORTCUTS = {
+    "patch_size": "sampling.patch_size", "axes": "sampling.axes", "channels": "sampling.channels",
+    "target_voxel_um": "sampling.target_voxel_um", "scale_factor": "sampling.scale_factor",
+    "scheme": "intensity.scheme", "seed": "sampling.seed", "workers": "workers",
+    "rgb": "read.rgb", "channel": "read.channel",
+}
+
+
+def _recipe(args: argparse.Namespace) -> Any:
+    from .recipe import load_recipe
+
+    overrides = list(args.overrides)
+    for attr, key in _SHORTCUTS.items():
+        value = getattr(args, attr, None)
+        if value is not None:
+            overrides.append(f"{key}={json.dumps(value)}")
+    return load_recipe(args.recipe, overrides)
+
+
+def _print_json(data: Any) -> None:
+    print(json.dumps(data, indent=1, default=str))
+
+
+def _fmt_vs(v: Sequence[float | None]) -> str:
+    return "x".join("?" if x is None else f"{x:.3g}" for x in v)
+
+
+def _table(rows: list[list[str]]) -> str:
+    widths = [max(len(r[i]) for r in rows) for i in range(len(rows[0]))]
+    return "\n".join("  ".join(c.ljust(w) for c, w in zip(r, widths)).rstrip() for r in rows)
+
+
+def cmd_scan(args: argparse.Namespace) -> int:
+    from .corpus.scan import scan_archive
+
+    result = scan_archive(args.archive, _recipe(args).corpus, progress=not args.quiet)
+    if args.json:
+        _print_json(result.to_dict())
+    else:
+        rows = [["source", "format", "shape (ZYX)", "dtype", "voxel µm (ZYX)", "p0.5..p99.5", "status"]]
+        for r in result.rows:
+            if r["status"] == "ok":
+                rows.append([r["name"], r["format"], "x".join(map(str, r["shape"])), r["dtype"], _fmt_vs(r["voxel_size_um"]),
+                             f"{r['range'][0]:.4g}..{r['range'][1]:.4g}", "ok"])
+            else:
+                shape = "x".join(map(str, r["shape"])) if "shape" in r else ""
+                vs = _fmt_vs(r["voxel_size_um"]) if "voxel_size_um" in r else ""
+                rows.append([r["name"], r["format"], shape, r.get("dtype", ""), vs, "", "FAILED"])
+        print(_table(rows))
+        for r in result.rows:
+            if r["status"] != "ok":
+                print(f"cannot use {r['name']}: {r['reason']}")
+        if result.ignored:
+            print(f"{len(result.ignored)} other file(s) ignored (not an image format), e.g. {result.ignored[0]['path']}")
+    if any(r.get("clinical") for r in result.rows):
+        print(CLINICAL_CAUTION, file=sys.stderr)
+    return 3 if result.n_failed else 0
+
+
+def cmd_corpus_build(args: argparse.Namespace) -> int:
+    from .corpus.build import build_corpus
+
+    recipe = _recipe(args)
+    result = build_corpus(args.archive, args.output, recipe.corpus, shard=args.shard, fresh=args.fresh,
+                          report=not args.no_report, progress=not args.quiet)
+    if args.json:
+        _print_json(result.to_dict())
+    else:
+        print(f"{result.path}: {result.n_patches} patches from {result.n_sources - len(result.failed)} of "
+              f"{result.n_sources} sources in {result.seconds:.1f} s"
+              + (f" ({result.resumed} sources kept from an interrupted run)" if result.resumed else ""))
+        for name, reason in result.failed:
+            print(f"skipped {name}: {reason}")
+        if not args.no_report:
+            print(f"report: {result.path / 'report' / 'summary.md'}")
+    _caution_if_clinical(result.path)
+    return result.exit_code
+
+
+def _caution_if_clinical(path: Any) -> None:
+    from pathlib import Path
+
+    m = Path(path) / "manifest.json"
+    if m.exists() and json.loads(m.read_text()).get("clinical"):
+        print(CLINICAL_CAUTION, file=sys.stderr)
+
+
+def cmd_corpus_show(args: argparse.Namespace) -> int:
+    from .corpus.report import summary_rows, write_report
+    from .corpus.store import open_corpus
+
+    store = open_corpus(args.corpus)
+    m = store.manifest
+    report = None if args.no_report else write_report(store.path, progress=not args.quiet)
+    if args.json:
+        _print_json({"patches": m["patches"], "counts": m["counts"], "statistics": {k: v for k, v in m["statistics"].items() if k != "histogram"},
+                     "sources": summary_rows(m), "report": None if report is None else str(report)})
+    else:
+        st, c = m["statistics"], m["counts"]
+        print(f"{store.path}: {m['patches']['count']} patches {m['patches']['shape']} ({m['patches']['encoding']['dtype']}), "
+              f"{c['sources_ok']} sources used, {c['sources_failed']} skipped")
+        if st["mean"] is not None:
+            print(f"normalized values: mean {st['mean']:.4f}, std {st['std']:.4f}")
+        rows = [["#", "source", "format", "shape", "voxel µm", "scheme", "planned", "kept", "low var", "backgr.", "dup"]]
+        for r in summary_rows(m):
+            if r["status"] == "ok":
+                rows.append([str(r["position"]), r["name"], r["format"], "x".join(map(str, r["shape"])), _fmt_vs(r["voxel_size_um"]),
+                             r["scheme"], str(r["planned"]), str(r["kept"]), str(r["low_variance"]), str(r["background"]), str(r["duplicate"])])
+        print(_table(rows))
+        for r in summary_rows(m):
+            if r["status"] != "ok":
+                print(f"skipped {r['name']}: {r['reason']}")
+        if report is not None:
+            print(f"report: {report / 'summary.md'}")
+    _caution_if_clinical(store.path)
+    return 0
+
+
+def cmd_corpus_merge(args: argparse.Namespace) -> int:
+    from .corpus.merge import merge_corpora
+    from .corpus.store import open_corpus
+
+    out = merge_corpora(args.shards, args.output, report=not args.no_report, progress=not args.quiet)
+    m = open_corpus(out).manifest
+    if args.json:
+        _print_json({"path": str(out), "patches": m["patches"]["count"], "counts": m["counts"], "warnings": m.get("warnings", [])})
+    else:
+        print(f"{out}: {m['patches']['count']} patches from {m['counts']['sources_ok']} sources ({len(args.shards)} shards)")
+        for w in m.get("warnings", []):
+            print(f"warning: {w}")
+    return 0
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Run the command line; returns the exit status."""
+    args = build_parser().parse_args(argv)
+    import logging
+
+    from .errors import WarmstartError
+
+    # tifffile logs its own complaint before raising; our error message already names the file.
+    logging.getLogger("tifffile").setLevel(logging.CRITICAL)
+
+    handlers = {"scan": cmd_scan, ("corpus", "build"): cmd_corpus_build, ("corpus", "show"): cmd_corpus_show,
+                ("corpus", "merge"): cmd_corpus_merge}
+    key = args.command if args.command == "scan" else (args.command, args.corpus_command)
+    try:
+        return handlers[key](args)
+    except WarmstartError as err:
+        print(f"warmstart: error: {err}", file=sys.stderr)
+        return EXIT_ERROR
+    except KeyboardInterrupt:
+        print("warmstart: interrupted; rerun the same command to resume", file=sys.stderr)
+        return 130

@@ -1,0 +1,321 @@
+"""Build a corpus store from an archive: discover, normalize, sample, filter, store, report.
+
+Each source is processed on its own (in a worker process when ``workers > 1``) into a staging
+file; the main process appends finished sources to the store strictly in the canonical source
+order (sorted names), so the store is the same whatever the number of workers, whether the
+build was interrupted and resumed, or built as shards and merged. A source's patches depend only
+on the settings, the seed and the source's name (see :func:`~warmstart.corpus.sampling.source_seed`).
+"""
+from __future__ import annotations
+
+import os
+import shutil
+import time
+import warnings
+from concurrent.futures import FIRST_COMPLETED, Future, ProcessPoolExecutor, wait
+from dataclasses import dataclass, field
+from multiprocessing import get_context
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from .. import __version__
+from ..errors import CorpusError, VolumeReadError, WarmstartError
+from ..intensity import fit_intensity
+from ..volumes import Candidate, describe_failure, discover, open_volume
+from .manifest import build_manifest
+from .sampling import PatchFilter, background_level, downscale_factors, extract_patches, plan_patches, source_seed
+from .settings import CorpusSettings
+from .store import INDEX_COLUMNS, StoreWriter, encode, write_json
+
+__all__ = ["build_corpus", "BuildResult", "process_source", "parse_shard", "EXIT_SKIPPED"]
+
+#: Exit status of a build (CLI) that finished but skipped unreadable sources.
+EXIT_SKIPPED = 3
+
+
+@dataclass
+class BuildResult:
+    """What a build produced.
+
+    Attributes
+    ----------
+    path : Path
+        The corpus store.
+    n_patches : int
+    n_sources : int
+        Sources this build (or shard) covered.
+    failed : list of (name, reason)
+        Sources skipped, with the reason.
+    ignored : list of (path, reason)
+        Files in the archive that are not images.
+    seconds : float
+    resumed : int
+        Sources taken over from an interrupted earlier run.
+    """
+
+    path: Path
+    n_patches: int
+    n_sources: int
+    failed: list[tuple[str, str]] = field(default_factory=list)
+    ignored: list[tuple[str, str]] = field(default_factory=list)
+    seconds: float = 0.0
+    resumed: int = 0
+
+    @property
+    def exit_code(self) -> int:
+        return EXIT_SKIPPED if self.failed else 0
+
+    def to_dict(self) -> dict[str, Any]:
+        return {"path": str(self.path), "n_patches": self.n_patches, "n_sources": self.n_sources,
+                "failed": [{"name": n, "reason": r} for n, r in self.failed],
+                "ignored": [{"path": p, "reason": r} for p, r in self.ignored],
+                "seconds": round(self.seconds, 3), "resumed": self.resumed, "exit_code": self.exit_code}
+
+
+def parse_shard(text: str | None) -> tuple[int, int] | None:
+    """Parse ``"i/n"`` (0 <= i < n)."""
+    if text is None:
+        return None
+    try:
+        i, n = (int(t) for t in str(text).split("/"))
+    except ValueError as err:
+        raise CorpusError(f"shard must look like i/n (e.g. 0/4), got {text!r}") from err
+    if not 0 <= i < n:
+        raise CorpusError(f"shard {text}: need 0 <= i < n")
+    return i, n
+
+
+class _Stats:
+    """Running sums and a fixed-range histogram of normalized values (mergeable exactly)."""
+
+    def __init__(self, lo: float, hi: float, bins: int = 256) -> None:
+        self.lo, self.hi, self.bins = lo, hi, bins
+        self.n = 0
+        self.sum = 0.0
+        self.sumsq = 0.0
+        self.below = 0
+        self.above = 0
+        self.hist = np.zeros(bins, dtype=np.int64)
+
+    def update(self, x: np.ndarray) -> None:
+        x = x.reshape(-1).astype(np.float64)
+        self.n += x.size
+        self.sum += float(x.sum())
+        self.sumsq += float(np.dot(x, x))
+        self.below += int((x < self.lo).sum())
+        self.above += int((x > self.hi).sum())
+        self.hist += np.histogram(x, bins=self.bins, range=(self.lo, self.hi))[0]
+
+    def to_dict(self) -> dict[str, Any]:
+        return {"n": self.n, "sum": self.sum, "sumsq": self.sumsq, "below": self.below, "above": self.above,
+                "range": [self.lo, self.hi], "counts": self.hist.tolist()}
+
+
+def process_source(job: dict[str, Any]) -> dict[str, Any]:
+    """Process one source into a staging file (runs in a worker process).
+
+    Parameters
+    ----------
+    job : dict
+        ``candidate`` (Candidate), ``position`` (int), ``settings`` (CorpusSettings as dict),
+        ``staging`` (folder).
+
+    Returns
+    -------
+    dict
+        The journal record, plus ``columns`` (index rows) and ``staging_file`` for the writer.
+        Failures are returned, not raised: ``status = "failed"`` with the reason.
+    """
+    cand: Candidate = job["candidate"]
+    s = CorpusSettings.from_dict(job["settings"])
+    pos = int(job["position"])
+    staging = Path(job["staging"]) / f"{pos:06d}.codes"
+    t0 = time.perf_counter()
+    rec: dict[str, Any] = {"position": pos, "name": cand.name, "path": cand.path, "format": cand.format,
+                           "status": "ok", "reason": None, "warnings": []}
+    k, p = s.sampling.channels, s.sampling.patch_size
+    cols: dict[str, list[np.ndarray]] = {c: [] for c in INDEX_COLUMNS}
+    try:
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            vol = open_volume(cand, rgb=s.read.rgb, channel=s.read.channel,
+                              target_voxel_um=s.sampling.target_voxel_um, voxel_size_um=s.read.voxel_size_um)
+            with vol:
+                rec["format"] = vol.source.format  # e.g. "ome-zarr" for a zarr folder with multiscales
+                ref = fit_intensity(vol, s.intensity)
+                factors, notes = downscale_factors(vol.voxel_size_um, s.sampling)
+                rng = np.random.default_rng(source_seed(s.sampling.seed, cand.name))
+                plan = plan_patches(vol.shape, factors, s.sampling, rng)
+                if len(plan) == 0:
+                    raise VolumeReadError(
+                        f"{cand.path}: volume {vol.shape} is smaller than one patch "
+                        f"({p} px at downscale factors {[round(f, 3) for f in factors]})"
+                    )
+                filt = PatchFilter(s.filters, background_level(ref, s.filters))
+                stats = _Stats(*s.histogram_range())
+                qerr = {"max_abs_error": 0.0, "clipped": 0}
+                budget = s.memory_mb * 2**20 // 4
+                with open(staging, "wb") as fh:
+                    for patches, idx in extract_patches(vol.read, vol.shape, vol.dtype.itemsize, plan, (k, p, p),
+                                                        ref.apply, filt, budget):
+                        codes, err = encode(patches, s.store)
+                        fh.write(codes.tobytes())
+                        stats.update(patches)
+                        qerr = {"max_abs_error": max(qerr["max_abs_error"], err["max_abs_error"]),
+                                "clipped": qerr["clipped"] + err["clipped"]}
+                        axis = plan.axis[idx]
+                        start = plan.start[idx]
+                        cols["source"].append(np.full(len(idx), pos))
+                        cols["axis"].append(axis)
+                        cols["z"].append(start[:, 0])
+                        cols["y"].append(start[:, 1])
+                        cols["x"].append(start[:, 2])
+                        inplane = np.array([(factors[1] + factors[2]) / 2, (factors[0] + factors[2]) / 2,
+                                            (factors[0] + factors[1]) / 2])
+                        cols["scale"].append(inplane[axis])
+            rec.update(volume=vol.describe(), reference=ref.to_dict(), factors=list(factors),
+                       counts=filt.counts.to_dict(), stats=stats.to_dict(), quantization=qerr)
+            rec["warnings"] = notes + [str(w.message) for w in caught]
+            if ref.stats["n_nonfinite"]:
+                rec["warnings"].append(f"{ref.stats['n_nonfinite']} NaN/Inf voxels in the intensity sample (excluded)")
+    except (WarmstartError, OSError, MemoryError) as err:
+        rec.update(status="failed", reason=describe_failure(err))
+    except Exception as err:  # a reader library's unexpected error must not stop the whole build
+        rec.update(status="failed", reason=f"{cand.path}: {type(err).__name__}: {err}")
+    if rec["status"] != "ok":
+        staging.unlink(missing_ok=True)
+        rec["columns"] = {c: np.empty(0) for c in INDEX_COLUMNS}
+    else:
+        rec["columns"] = {c: (np.concatenate(v) if v else np.empty(0)) for c, v in cols.items()}
+        rec["staging_file"] = str(staging)
+    rec["seconds"] = round(time.perf_counter() - t0, 3)
+    return rec
+
+
+def _prepare_output(out: Path, fresh: bool) -> None:
+    if fresh and out.exists():
+        if not (out / "build.json").exists():
+            raise CorpusError(f"{out}: --fresh only removes a corpus store, and this folder is not one")
+        shutil.rmtree(out)
+
+
+def build_corpus(
+    archive: str | os.PathLike[str],
+    out: str | os.PathLike[str],
+    settings: CorpusSettings | None = None,
+    *,
+    shard: tuple[int, int] | str | None = None,
+    fresh: bool = False,
+    report: bool = True,
+    progress: bool = True,
+) -> BuildResult:
+    """Build (or resume building) a corpus store from an archive.
+
+    Parameters
+    ----------
+    archive : path
+        Folder of volumes in any readable format (see :func:`warmstart.volumes.discover`).
+    out : path
+        The store folder. If it holds an interrupted build with the same settings, the build
+        resumes; a finished or foreign folder is refused.
+    settings : CorpusSettings, optional
+    shard : (i, n) or "i/n", optional
+        Build only sources whose canonical position is ``i`` modulo ``n``; merge shards with
+        :func:`warmstart.corpus.merge.merge_corpora`.
+    fresh : bool
+        Remove an existing store at ``out`` first.
+    report : bool
+        Write ``report/`` at the end.
+    progress : bool
+        Show a progress bar on stderr.
+
+    Returns
+    -------
+    BuildResult
+        ``exit_code`` is :data:`EXIT_SKIPPED` when some sources were skipped.
+    """
+    from tqdm.auto import tqdm
+
+    t0 = time.perf_counter()
+    s = settings or CorpusSettings()
+    out = Path(out)
+    shard = parse_shard(shard) if isinstance(shard, str) else shard
+    candidates, ignored = discover(archive)
+    if not candidates:
+        raise CorpusError(f"{archive}: no volume found ({len(ignored)} other files ignored)")
+    names = [c.name for c in candidates]
+    chosen = [i for i in range(len(candidates)) if shard is None or i % shard[1] == shard[0]]
+    build = {"format_version": 1, "warmstart_version": __version__, "archive": str(Path(archive).absolute()),
+             "archive_names": names, "sources": chosen, "shard": list(shard) if shard else None,
+             "settings": s.identity()}
+    _prepare_output(out, fresh)
+    if (out / "manifest.json").exists():
+        raise CorpusError(f"{out}: a finished corpus is already there; use --fresh to rebuild or a new folder")
+    k, p = s.sampling.channels, s.sampling.patch_size
+    writer = StoreWriter(out, build, s.store, (k, p, p))
+    done = writer.recover()
+    if [r["position"] for r in done] != chosen[: len(done)]:
+        raise CorpusError(f"{out}: journal does not match the source list; rebuild with --fresh")
+    remaining = chosen[len(done):]
+    staging = out / "staging"
+    shutil.rmtree(staging, ignore_errors=True)
+    staging.mkdir()
+    jobs = [{"candidate": candidates[i], "position": i, "settings": s.to_dict(), "staging": str(staging)} for i in remaining]
+    bar = tqdm(total=len(chosen), initial=len(done), desc="corpus: sources", unit="src", disable=not progress, leave=False)
+    n_patches = sum(r["stop"] - r["start"] for r in done)
+
+    def commit(rec: dict[str, Any]) -> None:
+        nonlocal n_patches
+        cols = rec.pop("columns")
+        sfile = rec.pop("staging_file", None)
+        codes = np.empty((0, k, p, p))
+        if sfile:
+            dtype = np.float16 if s.store.dtype == "float16" else np.uint16
+            codes = np.fromfile(sfile, dtype=dtype).reshape(-1, k, p, p)
+        writer.append(codes, cols, rec)
+        if sfile:
+            os.unlink(sfile)
+        n_patches += len(codes)
+        bar.update(1)
+        bar.set_postfix(patches=n_patches)
+
+    if s.workers == 1 or len(jobs) <= 1:
+        for job in jobs:
+            commit(process_source(job))
+    else:
+        _run_parallel(jobs, s.workers, commit)
+    bar.close()
+    records = writer.records()
+    manifest = build_manifest(build, records, s, writer.patches.shape)
+    write_json(out / "manifest.json", manifest)
+    shutil.rmtree(staging, ignore_errors=True)
+    if report:
+        from .report import write_report
+
+        write_report(out, progress=progress)
+    failed = [(r["name"], r["reason"]) for r in records if r["status"] != "ok"]
+    return BuildResult(out, manifest["patches"]["count"], len(chosen), failed,
+                       [(i.path, i.reason) for i in ignored], time.perf_counter() - t0, len(done))
+
+
+def _run_parallel(jobs: list[dict[str, Any]], workers: int, commit: Any) -> None:
+    """Run jobs in worker processes; commit results in job order, keeping few in flight."""
+    # spawn, not fork: zarr runs an event-loop thread, and forking a threaded process can deadlock.
+    ctx = get_context("spawn")
+    pending: dict[int, Future[dict[str, Any]]] = {}
+    ready: dict[int, dict[str, Any]] = {}
+    nxt = 0  # next job to submit
+    want = 0  # next job to commit
+    with ProcessPoolExecutor(max_workers=workers, mp_context=ctx) as pool:
+        while want < len(jobs):
+            while nxt < len(jobs) and len(pending) + len(ready) < 2 * workers:
+                pending[nxt] = pool.submit(process_source, jobs[nxt])
+                nxt += 1
+            done, _ = wait(list(pending.values()), return_when=FIRST_COMPLETED)
+            for i in [i for i, f in pending.items() if f in done]:
+                ready[i] = pending.pop(i).result()
+            while want in ready:
+                commit(ready.pop(want))
+                want += 1

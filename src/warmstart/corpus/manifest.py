@@ -1,0 +1,83 @@
+"""The corpus manifest: sources, their intensity references, and patch statistics.
+
+Assembled from the journal records alone (never from the patches), so a build, a resumed build
+and a merge of shards produce it the same way. Statistics combine exactly: sums, sums of
+squares and fixed-range histograms add up across sources and shards.
+"""
+from __future__ import annotations
+
+import math
+import time
+from typing import Any, Sequence
+
+import numpy as np
+
+from .. import __version__
+from .settings import CorpusSettings
+from .store import STORE_VERSION, quantization_note
+
+__all__ = ["build_manifest", "combine_stats"]
+
+_RULES = ("planned", "nonfinite", "low_variance", "background", "duplicate", "kept")
+
+
+def combine_stats(parts: Sequence[dict[str, Any]], rng: Sequence[float]) -> dict[str, Any]:
+    """Combine per-source value statistics into mean, std and a 256-bin histogram."""
+    n = sum(p["n"] for p in parts)
+    total = sum(p["sum"] for p in parts)
+    sq = sum(p["sumsq"] for p in parts)
+    counts = np.sum([p["counts"] for p in parts], axis=0).astype(int).tolist() if parts else [0] * 256
+    mean = total / n if n else None
+    var = max(sq / n - mean * mean, 0.0) if n else None
+    return {"values": n, "mean": mean, "std": None if var is None else math.sqrt(var),
+            "below_range": sum(p["below"] for p in parts), "above_range": sum(p["above"] for p in parts),
+            "histogram": {"range": list(rng), "bins": len(counts), "counts": counts}}
+
+
+def _source_entry(r: dict[str, Any]) -> dict[str, Any]:
+    entry = {k: r.get(k) for k in ("position", "name", "path", "format", "status", "reason", "warnings", "seconds")}
+    entry["patch_range"] = [r["start"], r["stop"]]
+    if r["status"] == "ok":
+        vol = r["volume"]
+        entry.update(
+            sha256=vol["source"]["sha256"], hash_kind=vol["source"]["hash_kind"], size_bytes=vol["source"]["size_bytes"],
+            shape=vol["shape"], dtype=vol["dtype"], voxel_size_um=vol["voxel_size_um"], meta=vol["meta"],
+            reference=r["reference"], downscale_factors=r["factors"], counts=r["counts"],
+            quantization=r["quantization"],
+            patch_mean=r["stats"]["sum"] / r["stats"]["n"] if r["stats"]["n"] else None,
+        )
+    return entry
+
+
+def build_manifest(build: dict[str, Any], records: list[dict[str, Any]], s: CorpusSettings,
+                   patches_shape: Sequence[int]) -> dict[str, Any]:
+    """Assemble ``manifest.json`` from a build description and its journal records."""
+    ok = [r for r in records if r["status"] == "ok"]
+    stats = combine_stats([r["stats"] for r in ok], s.histogram_range())
+    totals = {rule: sum(r["counts"][rule] for r in ok) for rule in _RULES}
+    inplane = [v for r in ok for v in r["volume"]["voxel_size_um"][1:] if v is not None]
+    target = s.sampling.target_voxel_um
+    qnote = quantization_note(s.store)
+    qnote["measured_max_abs_error"] = max((r["quantization"]["max_abs_error"] for r in ok), default=0.0)
+    qnote["clipped_values"] = sum(r["quantization"]["clipped"] for r in ok)
+    encoding = {"dtype": s.store.dtype}
+    if s.store.dtype == "uint16":
+        encoding["uint16_range"] = list(s.store.uint16_range)
+    modalities = sorted({r["volume"]["meta"].get("modality") or r["format"] for r in ok})
+    return {
+        "format_version": STORE_VERSION,
+        "warmstart_version": __version__,
+        "created": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
+        "archive": build["archive"],
+        "shard": build["shard"],
+        "settings": s.identity(),
+        "patches": {"count": int(patches_shape[0]), "shape": list(patches_shape[1:]), "encoding": encoding,
+                    "chunk_patches": s.store.chunk_patches, "quantization": qnote},
+        "statistics": stats,
+        "counts": {"sources": len(records), "sources_ok": len(ok), "sources_failed": len(records) - len(ok), **totals},
+        "voxel_size_um": {"source_range": [min(inplane), max(inplane)] if inplane else None,
+                          "patch": target, "unknown_sources": sum(1 for r in ok if r["volume"]["voxel_size_um"][1] is None)},
+        "modalities": modalities,
+        "clinical": any(r["volume"]["meta"].get("clinical") for r in ok),
+        "sources": [_source_entry(r) for r in records],
+    }

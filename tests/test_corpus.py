@@ -1,0 +1,209 @@
+"""Corpus builds: provenance, statistics, bad sources, workers, shards + merge, and resume after a real kill."""
+from __future__ import annotations
+
+import json
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from conftest import textured
+from warmstart.corpus.build import EXIT_SKIPPED, build_corpus
+from warmstart.corpus.merge import merge_corpora
+from warmstart.corpus.settings import CorpusSettings, SamplingSettings, StoreSettings
+from warmstart.corpus.store import INDEX_COLUMNS, open_corpus
+from warmstart.errors import CorpusError
+from warmstart.intensity import IntensityReference
+from warmstart.volumes import open_volume
+
+SMALL = CorpusSettings(sampling=SamplingSettings(patch_size=16, axes="ZY", slice_stride=3, max_per_source=60))
+
+
+def _same_store(a: Path, b: Path) -> None:
+    sa, sb = open_corpus(a), open_corpus(b)
+    np.testing.assert_array_equal(sa.patches[:], sb.patches[:])
+    ia, ib = sa.index(), sb.index()
+    for c in INDEX_COLUMNS:
+        np.testing.assert_array_equal(ia[c], ib[c])
+    strip = lambda m: [{k: v for k, v in e.items() if k not in ("seconds", "path")} for e in m["sources"]]  # noqa: E731
+    assert strip(sa.manifest) == strip(sb.manifest)
+    assert sa.manifest["statistics"] == sb.manifest["statistics"]
+
+
+def test_build_provenance_reproduces_every_checked_patch(small_archive, tmp_path):
+    res = build_corpus(small_archive, tmp_path / "c.zarr", SMALL, report=False, progress=False)
+    assert res.exit_code == 0 and res.n_patches > 100
+    store = open_corpus(res.path)
+    idx = store.index()
+    rng = np.random.default_rng(0)
+    for i in rng.choice(len(store), 25, replace=False):
+        entry = store.manifest["sources"][idx["source"][i]]
+        ref = IntensityReference.from_dict(entry["reference"])
+        with open_volume(entry["path"]) as vol:
+            z, y, x, a = idx["z"][i], idx["y"][i], idx["x"][i], idx["axis"][i]
+            ext = [16, 16, 16]
+            ext[a] = 1
+            raw = vol.read((slice(z, z + ext[0]), slice(y, y + ext[1]), slice(x, x + ext[2]))).astype(np.float32)
+        expect = ref.apply(raw.transpose([a] + [d for d in range(3) if d != a]))
+        # float16 storage: relative error <= 2^-11
+        np.testing.assert_allclose(store.read(i, i + 1)[0], expect, rtol=2**-10, atol=1e-4)
+
+
+def test_manifest_statistics_match_the_stored_patches(small_archive, tmp_path):
+    res = build_corpus(small_archive, tmp_path / "c.zarr", SMALL, report=False, progress=False)
+    store = open_corpus(res.path)
+    x = store.read().astype(np.float64)
+    st = store.manifest["statistics"]
+    assert st["values"] == x.size
+    assert st["mean"] == pytest.approx(x.mean(), abs=1e-3) and st["std"] == pytest.approx(x.std(), abs=1e-3)
+    counts, _ = np.histogram(x, bins=256, range=tuple(st["histogram"]["range"]))
+    # Stored float16 values may round across a bin edge; the distributions agree (CDFs within 0.5 %).
+    assert sum(st["histogram"]["counts"]) + st["below_range"] + st["above_range"] == x.size
+    cdf_gap = np.abs(np.cumsum(st["histogram"]["counts"]) - np.cumsum(counts)).max() / x.size
+    assert cdf_gap < 0.005
+    per_source = {e["name"]: e["counts"]["kept"] for e in store.manifest["sources"]}
+    assert sum(per_source.values()) == len(store)
+    srcs = [e for e in store.manifest["sources"]]
+    assert all(len(e["sha256"]) == 64 and e["reference"]["scheme"] == "percentile" for e in srcs)
+    assert {e["format"] for e in srcs} == {"tiff", "mrc", "npy", "slices", "ome-zarr"}
+
+
+def test_uint16_store_error_within_stated_bound(small_archive, tmp_path):
+    s = CorpusSettings(sampling=SMALL.sampling, store=StoreSettings(dtype="uint16", uint16_range=(-1.0, 2.0)))
+    res = build_corpus(small_archive, tmp_path / "u.zarr", s, report=False, progress=False)
+    q = open_corpus(res.path).manifest["patches"]["quantization"]
+    assert q["dtype"] == "uint16" and 0 < q["measured_max_abs_error"] <= q["step"] / 2 + 1e-6  # + float32 decode rounding
+    f16 = build_corpus(small_archive, tmp_path / "f.zarr", SMALL, report=False, progress=False)
+    np.testing.assert_allclose(open_corpus(res.path).read(), open_corpus(f16.path).read(), atol=q["step"] / 2 + 2e-3)
+
+
+def test_bad_sources_are_skipped_with_reasons(broken_archive, tmp_path):
+    res = build_corpus(broken_archive, tmp_path / "c.zarr", SMALL, report=True, progress=False)
+    assert res.exit_code == EXIT_SKIPPED
+    reasons = dict(res.failed)
+    assert set(reasons) == {"zz_truncated.tif", "flat.npy", "allnan.npy", "empty.mrc"}
+    assert "empty file" in reasons["empty.mrc"] and "no finite voxel" in reasons["allnan.npy"]
+    assert "no contrast" in reasons["flat.npy"] and "zz_truncated.tif" in reasons["zz_truncated.tif"]
+    store = open_corpus(res.path)
+    failed_pos = {e["position"] for e in store.manifest["sources"] if e["status"] == "failed"}
+    assert all(e["patch_range"][0] == e["patch_range"][1] for e in store.manifest["sources"] if e["position"] in failed_pos)
+    assert not failed_pos & set(np.unique(store.index()["source"]).tolist())
+    summary = (res.path / "report" / "summary.md").read_text()
+    assert "Skipped sources" in summary and "flat.npy" in summary
+
+
+def test_report_files(small_archive, tmp_path):
+    res = build_corpus(small_archive, tmp_path / "c.zarr", SMALL, progress=False)
+    rep = res.path / "report"
+    summary = json.loads((rep / "summary.json").read_text())
+    assert len(summary["sources"]) == 5
+    from PIL import Image
+
+    for row in summary["sources"]:
+        montage = Image.open(rep / row["files"]["montage"])
+        assert montage.size[0] > 16 and montage.size[1] >= 16
+        assert (rep / row["files"]["histograms"]).stat().st_size > 1000
+
+
+@pytest.mark.slow
+def test_two_workers_equal_one(small_archive, tmp_path):
+    one = build_corpus(small_archive, tmp_path / "one.zarr", SMALL, report=False, progress=False)
+    two = build_corpus(small_archive, tmp_path / "two.zarr", CorpusSettings(**{**SMALL.__dict__, "workers": 2}),
+                       report=False, progress=False)
+    _same_store(one.path, two.path)
+
+
+def test_shards_merged_equal_single_build(small_archive, tmp_path):
+    full = build_corpus(small_archive, tmp_path / "full.zarr", SMALL, report=False, progress=False)
+    shards = [build_corpus(small_archive, tmp_path / f"s{i}.zarr", SMALL, shard=f"{i}/3", report=False, progress=False)
+              for i in range(3)]
+    assert sum(s.n_sources for s in shards) == full.n_sources
+    merged = merge_corpora([s.path for s in shards[::-1]], tmp_path / "merged.zarr", report=False, progress=False)
+    _same_store(full.path, merged)
+    with pytest.raises(CorpusError, match="in both"):
+        merge_corpora([shards[0].path, shards[0].path], tmp_path / "dup.zarr", progress=False)
+
+
+def test_resume_cuts_unjournalled_patches(small_archive, tmp_path):
+    """A crash after patches were appended but before the journal record: resume removes them."""
+    ref = build_corpus(small_archive, tmp_path / "ref.zarr", SMALL, report=False, progress=False)
+    out = tmp_path / "c.zarr"
+    build_corpus(small_archive, out, SMALL, report=False, progress=False)
+    store = open_corpus(out)
+    first = store.manifest["sources"][0]["patch_range"][1]
+    for j in sorted((out / "journal").glob("*.json"))[1:]:
+        j.unlink()  # as if the build died while appending source 1
+    (out / "manifest.json").unlink()
+    res = build_corpus(small_archive, out, SMALL, report=False, progress=False)
+    assert res.resumed == 1 and first < res.n_patches
+    _same_store(ref.path, out)
+
+
+def test_refuses_changed_settings_or_foreign_folder(small_archive, tmp_path):
+    out = tmp_path / "c.zarr"
+    build_corpus(small_archive, out, SMALL, report=False, progress=False)
+    (out / "manifest.json").unlink()
+    other = CorpusSettings(sampling=SamplingSettings(patch_size=32))
+    with pytest.raises(CorpusError, match="different settings"):
+        build_corpus(small_archive, out, other, report=False, progress=False)
+    foreign = tmp_path / "notes"
+    foreign.mkdir()
+    (foreign / "keep.txt").write_text("precious")
+    with pytest.raises(CorpusError, match="not a corpus"):
+        build_corpus(small_archive, foreign, SMALL, report=False, progress=False)
+    with pytest.raises(CorpusError, match="only removes a corpus store"):
+        build_corpus(small_archive, foreign, SMALL, fresh=True, report=False, progress=False)
+    assert (foreign / "keep.txt").read_text() == "precious"
+
+
+def _many_sources(root: Path, n: int) -> None:
+    root.mkdir()
+    for i in range(n):
+        np.save(root / f"vol_{i:03d}.npy", textured(shape=(24, 96, 96), dtype=np.float32, seed=i))
+
+
+@pytest.mark.slow
+def test_resume_after_real_kill_matches_uninterrupted(tmp_path):
+    archive = tmp_path / "archive"
+    _many_sources(archive, 40)
+    args = ["--patch-size", "16", "--set", "sampling.slice_stride=1", "--set", "sampling.max_per_source=400",
+            "--no-report"]
+    cmd = [sys.executable, "-m", "warmstart", "-q", "corpus", "build", str(archive)]
+    ref = tmp_path / "ref.zarr"
+    subprocess.run(cmd + ["-o", str(ref)] + args, check=True)
+    out = tmp_path / "killed.zarr"
+    proc = subprocess.Popen(cmd + ["-o", str(out)] + args)
+    journal = out / "journal"
+    deadline = time.time() + 120
+    while time.time() < deadline:
+        if journal.exists() and len(list(journal.glob("*.json"))) >= 5:
+            break
+        time.sleep(0.005)
+    proc.send_signal(signal.SIGKILL)
+    proc.wait()
+    done_before = len(list(journal.glob("*.json")))
+    assert 5 <= done_before < 40, "the build was not interrupted mid-way"
+    assert not (out / "manifest.json").exists()
+    rerun = subprocess.run(cmd + ["-o", str(out)] + args + ["--json"], capture_output=True, text=True, check=True)
+    result = json.loads(rerun.stdout)
+    assert result["resumed"] >= done_before - 1 and result["n_sources"] == 40
+    _same_store(ref, out)
+
+
+def test_python_api_top_level():
+    import warmstart
+
+    assert warmstart.build_corpus is build_corpus
+    assert callable(warmstart.open_volume) and callable(warmstart.fit_intensity)
+    with pytest.raises(AttributeError):
+        warmstart.no_such_thing  # noqa: B018
+
+
+def test_environment_has_no_torch_requirement():
+    # The corpus stage must not need torch: nothing in this test session imported it.
+    assert "torch" not in sys.modules or os.environ.get("WARMSTART_TORCH_LOADED_BY_OTHER_TESTS")
