@@ -50,8 +50,8 @@ def test_build_provenance_reproduces_every_checked_patch(small_archive, tmp_path
             ext[a] = 1
             raw = vol.read((slice(z, z + ext[0]), slice(y, y + ext[1]), slice(x, x + ext[2]))).astype(np.float32)
         expect = ref.apply(raw.transpose([a] + [d for d in range(3) if d != a]))
-        # float16 storage: relative error <= 2^-11
-        np.testing.assert_allclose(store.read(i, i + 1)[0], expect, rtol=2**-10, atol=1e-4)
+        # default uint16 storage over [-1, 2]: absolute error <= half a step (2.3e-5)
+        np.testing.assert_allclose(store.read(i, i + 1)[0], expect, rtol=0, atol=3e-5)
 
 
 def test_manifest_statistics_match_the_stored_patches(small_archive, tmp_path):
@@ -62,7 +62,7 @@ def test_manifest_statistics_match_the_stored_patches(small_archive, tmp_path):
     assert st["values"] == x.size
     assert st["mean"] == pytest.approx(x.mean(), abs=1e-3) and st["std"] == pytest.approx(x.std(), abs=1e-3)
     counts, _ = np.histogram(x, bins=256, range=tuple(st["histogram"]["range"]))
-    # Stored float16 values may round across a bin edge; the distributions agree (CDFs within 0.5 %).
+    # Stored (quantized) values may round across a bin edge; the distributions agree (CDFs within 0.5 %).
     assert sum(st["histogram"]["counts"]) + st["below_range"] + st["above_range"] == x.size
     cdf_gap = np.abs(np.cumsum(st["histogram"]["counts"]) - np.cumsum(counts)).max() / x.size
     assert cdf_gap < 0.005
@@ -73,13 +73,28 @@ def test_manifest_statistics_match_the_stored_patches(small_archive, tmp_path):
     assert {e["format"] for e in srcs} == {"tiff", "mrc", "npy", "slices", "ome-zarr"}
 
 
-def test_uint16_store_error_within_stated_bound(small_archive, tmp_path):
+def test_uint16_and_float16_errors_within_stated_bounds(small_archive, tmp_path):
     s = CorpusSettings(sampling=SMALL.sampling, store=StoreSettings(dtype="uint16", uint16_range=(-1.0, 2.0)))
     res = build_corpus(small_archive, tmp_path / "u.zarr", s, report=False, progress=False)
     q = open_corpus(res.path).manifest["patches"]["quantization"]
     assert q["dtype"] == "uint16" and 0 < q["measured_max_abs_error"] <= q["step"] / 2 + 1e-6  # + float32 decode rounding
-    f16 = build_corpus(small_archive, tmp_path / "f.zarr", SMALL, report=False, progress=False)
-    np.testing.assert_allclose(open_corpus(res.path).read(), open_corpus(f16.path).read(), atol=q["step"] / 2 + 2e-3)
+    f16 = CorpusSettings(sampling=SMALL.sampling, store=StoreSettings(dtype="float16", compression="lz4"))
+    f16 = build_corpus(small_archive, tmp_path / "f.zarr", f16, report=False, progress=False)
+    qf = open_corpus(f16.path).manifest["patches"]["quantization"]
+    assert qf["dtype"] == "float16" and 0 < qf["measured_max_abs_error"] <= 2**-11 * 2.0  # |x| <= 2 here
+    a, b = open_corpus(res.path).read(), open_corpus(f16.path).read()
+    np.testing.assert_allclose(a, b, rtol=2**-11, atol=q["step"] / 2 + 1e-6)
+
+
+def test_uint16_encoding_rounds_and_counts_clipping():
+    from warmstart.corpus.store import decode, encode
+
+    enc = {"dtype": "uint16", "uint16_range": [-1.0, 2.0]}
+    x = np.array([-1.5, -1.0, 0.0, 0.123456, 1.0, 2.0, 7.0], np.float32)
+    codes, err = encode(x, enc)
+    step = 3.0 / 65535
+    assert codes[0] == 0 and codes[1] == 0 and codes[-1] == 65535 and codes[-2] == 65535 and err["clipped"] == 2
+    np.testing.assert_allclose(decode(codes, enc)[1:-1], x[1:-1], atol=step / 2 + 1e-7)
 
 
 def test_bad_sources_are_skipped_with_reasons(broken_archive, tmp_path):

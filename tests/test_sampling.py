@@ -102,7 +102,7 @@ def test_groups_respect_budget_and_cover_every_patch():
 
 # --- extraction and filters ------------------------------------------------------------------
 def _extract(vol, s, factors=(1, 1, 1), filters=FilterSettings(min_std=0, max_background_fraction=1, duplicate_threshold=0),
-             budget=2**20, normalize=lambda x: x):
+             budget=2**20, normalize=lambda x, out=None: x):
     plan = plan_patches(vol.shape, factors, s, np.random.default_rng(0))
     filt = PatchFilter(filters, background_level=-np.inf)
     out = list(extract_patches(lambda r: vol[r], vol.shape, vol.itemsize, plan,
@@ -148,7 +148,7 @@ def test_filters_count_each_rule():
     f = FilterSettings(min_std=0.01, max_background_fraction=0.9, duplicate_threshold=0.05)
     plan = plan_patches(vol.shape, (1, 1, 1), s, np.random.default_rng(0))
     filt = PatchFilter(f, background_level=0.0)
-    kept = list(extract_patches(lambda r: vol[r], vol.shape, 4, plan, (1, 16, 16), lambda x: x, filt, 2**20))
+    kept = list(extract_patches(lambda r: vol[r], vol.shape, 4, plan, (1, 16, 16), lambda x, out=None: x, filt, 2**20))
     c = filt.counts
     assert (c.planned, c.low_variance, c.background, c.nonfinite, c.duplicate) == (36, 9, 9, 1, 2)
     assert c.kept == 36 - 9 - 9 - 1 - 2 == sum(len(p) for p, _ in kept)

@@ -166,9 +166,16 @@ class IntensityReference:
     settings: dict[str, Any] = field(default_factory=dict)
     stats: dict[str, Any] = field(default_factory=dict)
 
-    def apply(self, raw: np.ndarray) -> np.ndarray:
-        """Map raw values to normalized float32 (NaN stays NaN)."""
-        out = np.asarray(raw, dtype=np.float32) * np.float32(self.slope) + np.float32(self.offset)
+    def apply(self, raw: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
+        """Map raw values to normalized float32 (NaN stays NaN).
+
+        ``out`` (a float32 array, may be ``raw`` itself) receives the result in place.
+        """
+        if out is None:
+            out = np.asarray(raw, dtype=np.float32) * np.float32(self.slope)
+        else:
+            np.multiply(raw, np.float32(self.slope), out=out)
+        out += np.float32(self.offset)
         if self.clip is not None:
             np.clip(out, self.clip[0], self.clip[1], out=out)
         return out

@@ -27,7 +27,7 @@ from ..volumes import Candidate, describe_failure, discover, open_volume
 from .manifest import build_manifest
 from .sampling import PatchFilter, background_level, downscale_factors, extract_patches, plan_patches, source_seed
 from .settings import CorpusSettings
-from .store import INDEX_COLUMNS, StoreWriter, encode, write_json
+from .store import INDEX_COLUMNS, CodeHistogram, StoreWriter, encode, write_json
 
 __all__ = ["build_corpus", "BuildResult", "process_source", "parse_shard", "EXIT_SKIPPED"]
 
@@ -87,32 +87,6 @@ def parse_shard(text: str | None) -> tuple[int, int] | None:
     return i, n
 
 
-class _Stats:
-    """Running sums and a fixed-range histogram of normalized values (mergeable exactly)."""
-
-    def __init__(self, lo: float, hi: float, bins: int = 256) -> None:
-        self.lo, self.hi, self.bins = lo, hi, bins
-        self.n = 0
-        self.sum = 0.0
-        self.sumsq = 0.0
-        self.below = 0
-        self.above = 0
-        self.hist = np.zeros(bins, dtype=np.int64)
-
-    def update(self, x: np.ndarray) -> None:
-        x = x.reshape(-1).astype(np.float64)
-        self.n += x.size
-        self.sum += float(x.sum())
-        self.sumsq += float(np.dot(x, x))
-        self.below += int((x < self.lo).sum())
-        self.above += int((x > self.hi).sum())
-        self.hist += np.histogram(x, bins=self.bins, range=(self.lo, self.hi))[0]
-
-    def to_dict(self) -> dict[str, Any]:
-        return {"n": self.n, "sum": self.sum, "sumsq": self.sumsq, "below": self.below, "above": self.above,
-                "range": [self.lo, self.hi], "counts": self.hist.tolist()}
-
-
 def process_source(job: dict[str, Any]) -> dict[str, Any]:
     """Process one source into a staging file (runs in a worker process).
 
@@ -154,15 +128,16 @@ def process_source(job: dict[str, Any]) -> dict[str, Any]:
                         f"({p} px at downscale factors {[round(f, 3) for f in factors]})"
                     )
                 filt = PatchFilter(s.filters, background_level(ref, s.filters))
-                stats = _Stats(*s.histogram_range())
+                stats = CodeHistogram()
+                enc = s.encoding()
                 qerr = {"max_abs_error": 0.0, "clipped": 0}
                 budget = s.memory_mb * 2**20 // 4
                 with open(staging, "wb") as fh:
                     for patches, idx in extract_patches(vol.read, vol.shape, vol.dtype.itemsize, plan, (k, p, p),
                                                         ref.apply, filt, budget):
-                        codes, err = encode(patches, s.store)
+                        codes, err = encode(patches, enc)
                         fh.write(codes.tobytes())
-                        stats.update(patches)
+                        stats.update(codes)
                         qerr = {"max_abs_error": max(qerr["max_abs_error"], err["max_abs_error"]),
                                 "clipped": qerr["clipped"] + err["clipped"]}
                         axis = plan.axis[idx]
@@ -176,7 +151,8 @@ def process_source(job: dict[str, Any]) -> dict[str, Any]:
                                             (factors[0] + factors[1]) / 2])
                         cols["scale"].append(inplane[axis])
             rec.update(volume=vol.describe(), reference=ref.to_dict(), factors=list(factors),
-                       counts=filt.counts.to_dict(), stats=stats.to_dict(), quantization=qerr)
+                       counts=filt.counts.to_dict(), quantization=qerr,
+                       stats=stats.summary(enc, *s.histogram_range()))
             rec["warnings"] = notes + [str(w.message) for w in caught]
             if ref.stats["n_nonfinite"]:
                 rec["warnings"].append(f"{ref.stats['n_nonfinite']} NaN/Inf voxels in the intensity sample (excluded)")
@@ -270,14 +246,12 @@ def build_corpus(
         nonlocal n_patches
         cols = rec.pop("columns")
         sfile = rec.pop("staging_file", None)
-        codes = np.empty((0, k, p, p))
-        if sfile:
-            dtype = np.float16 if s.store.dtype == "float16" else np.uint16
-            codes = np.fromfile(sfile, dtype=dtype).reshape(-1, k, p, p)
-        writer.append(codes, cols, rec)
+        parts = _staged_parts(sfile, np.dtype(np.float16 if s.store.dtype == "float16" else np.uint16),
+                              (k, p, p), 8 * s.store.chunk_patches) if sfile else iter(())
+        rec = writer.append(parts, cols, rec)
         if sfile:
             os.unlink(sfile)
-        n_patches += len(codes)
+        n_patches += rec["stop"] - rec["start"]
         bar.update(1)
         bar.set_postfix(patches=n_patches)
 
@@ -287,9 +261,10 @@ def build_corpus(
     else:
         _run_parallel(jobs, s.workers, commit)
     bar.close()
+    writer.finish_index()
     records = writer.records()
     manifest = build_manifest(build, records, s, writer.patches.shape)
-    write_json(out / "manifest.json", manifest)
+    write_json(out / "manifest.json", manifest)  # last: its presence marks the store finished
     shutil.rmtree(staging, ignore_errors=True)
     if report:
         from .report import write_report
@@ -300,10 +275,23 @@ def build_corpus(
                        [(i.path, i.reason) for i in ignored], time.perf_counter() - t0, len(done))
 
 
+def _staged_parts(path: str, dtype: np.dtype, shape: tuple[int, int, int], per_part: int):
+    """Read a staging file in pieces of ``per_part`` patches (memory stays bounded for any source)."""
+    nbytes = int(np.prod(shape)) * dtype.itemsize
+    with open(path, "rb") as fh:
+        while True:
+            buf = fh.read(per_part * nbytes)
+            if not buf:
+                return
+            yield np.frombuffer(buf, dtype=dtype).reshape((-1,) + shape)
+
+
 def _run_parallel(jobs: list[dict[str, Any]], workers: int, commit: Any) -> None:
     """Run jobs in worker processes; commit results in job order, keeping few in flight."""
-    # spawn, not fork: zarr runs an event-loop thread, and forking a threaded process can deadlock.
-    ctx = get_context("spawn")
+    # Not fork: zarr runs an event-loop thread in this process, and forking a threaded process can
+    # deadlock. A forkserver that has imported the build code forks workers that start at once.
+    ctx = get_context("forkserver")
+    ctx.set_forkserver_preload(["warmstart.corpus.build"])
     pending: dict[int, Future[dict[str, Any]]] = {}
     ready: dict[int, dict[str, Any]] = {}
     nxt = 0  # next job to submit

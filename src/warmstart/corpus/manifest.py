@@ -57,12 +57,10 @@ def build_manifest(build: dict[str, Any], records: list[dict[str, Any]], s: Corp
     totals = {rule: sum(r["counts"][rule] for r in ok) for rule in _RULES}
     inplane = [v for r in ok for v in r["volume"]["voxel_size_um"][1:] if v is not None]
     target = s.sampling.target_voxel_um
-    qnote = quantization_note(s.store)
+    qnote = quantization_note(s.encoding())
     qnote["measured_max_abs_error"] = max((r["quantization"]["max_abs_error"] for r in ok), default=0.0)
     qnote["clipped_values"] = sum(r["quantization"]["clipped"] for r in ok)
-    encoding = {"dtype": s.store.dtype}
-    if s.store.dtype == "uint16":
-        encoding["uint16_range"] = list(s.store.uint16_range)
+    encoding = s.encoding()
     modalities = sorted({r["volume"]["meta"].get("modality") or r["format"] for r in ok})
     return {
         "format_version": STORE_VERSION,

@@ -73,13 +73,15 @@ def merge_corpora(inputs: Sequence[str | os.PathLike[str]], out: str | os.PathLi
             records_by_pos[rec["position"]] = (i, rec)
     from tqdm.auto import tqdm
 
+    indexes = [st.index() for st in stores]
     for pos in tqdm(positions, desc="corpus: merge", unit="src", disable=not progress, leave=False):
         i, rec = records_by_pos[pos]
         st = stores[i]
         a, b = rec["start"], rec["stop"]
         codes = st.patches[a:b] if b > a else np.empty((0,) + shape)
-        cols = {c: st._index[c][a:b] if b > a else np.empty(0) for c in INDEX_COLUMNS}
+        cols = {c: indexes[i][c][a:b] for c in INDEX_COLUMNS}
         writer.append(codes, cols, {k: v for k, v in rec.items() if k not in ("start", "stop")})
+    writer.finish_index()
     manifest = build_manifest(build, writer.records(), s, writer.patches.shape)
     manifest["merged_from"] = build["merged_from"]
     if len(positions) < len(ref["archive_names"]):

@@ -135,31 +135,40 @@ class StoreSettings:
 
     Parameters
     ----------
-    dtype : {"float16", "uint16"}
-        float16 keeps 11 significant bits (relative error <= 2^-11); uint16 maps
-        ``uint16_range`` linearly to 0..65535 (absolute error <= half a step; values outside are
-        clipped and counted).
-    uint16_range : (float, float)
-        Normalized range covered by uint16 codes.
+    dtype : {"uint16", "float16"}
+        uint16 (default) maps ``uint16_range`` linearly to 0..65535: absolute error <= half a step
+        (2.3e-5 over [-1, 2]); values outside are clipped and counted in the manifest. float16
+        keeps every value (relative error <= 2^-11) but encodes about 3x slower on CPUs without a
+        vectorized conversion (measured).
+    uint16_range : (float, float), optional
+        Normalized range covered by uint16 codes; default [-8, 8] for z-score corpora and
+        [-1, 2] for the schemes that map two references to 0 and 1.
     chunk_patches : int
         Patches per zarr chunk (the unit of reading in pretraining).
+    compression : {"none", "lz4", "zstd"}
+        Chunk compression (blosc, byte shuffle). Noisy float16 patches shrink by about a quarter
+        with lz4, which halves the write speed (measured); hence the default ``none``.
     histogram_range : (float, float), optional
         Range of the 256-bin corpus histogram; default by scheme ([-0.5, 1.5], or [-5, 5] for
         z-score).
     """
 
-    dtype: str = "float16"
-    uint16_range: tuple[float, float] = (-1.0, 2.0)
+    dtype: str = "uint16"
+    uint16_range: tuple[float, float] | None = None
     chunk_patches: int = 256
+    compression: str = "none"
     histogram_range: tuple[float, float] | None = None
 
     def __post_init__(self) -> None:
         if self.dtype not in ("float16", "uint16"):
             raise RecipeError(f"store.dtype must be 'float16' or 'uint16', got {self.dtype!r}")
-        if not self.uint16_range[0] < self.uint16_range[1]:
+        if self.uint16_range is not None and not self.uint16_range[0] < self.uint16_range[1]:
             raise RecipeError(f"store.uint16_range must be increasing, got {self.uint16_range}")
         if self.chunk_patches < 1:
             raise RecipeError("store.chunk_patches must be >= 1")
+        if self.compression not in ("none", "lz4", "zstd"):
+            raise RecipeError(f"store.compression must be 'none', 'lz4' or 'zstd', got {self.compression!r}")
+
 
 
 @dataclass(frozen=True)
@@ -192,6 +201,14 @@ class CorpusSettings:
         if self.store.histogram_range is not None:
             return self.store.histogram_range
         return (-5.0, 5.0) if self.intensity.scheme == "zscore" else (-0.5, 1.5)
+
+    def encoding(self) -> dict[str, Any]:
+        """How patches are stored, all a reader needs to decode them (``corpus.store.decode``)."""
+        enc: dict[str, Any] = {"dtype": self.store.dtype}
+        if self.store.dtype == "uint16":
+            rng = self.store.uint16_range or ((-8.0, 8.0) if self.intensity.scheme == "zscore" else (-1.0, 2.0))
+            enc["uint16_range"] = [float(rng[0]), float(rng[1])]
+        return enc
 
     def identity(self) -> dict[str, Any]:
         """The settings that decide the patches (without workers / memory)."""

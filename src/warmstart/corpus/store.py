@@ -21,14 +21,14 @@ from __future__ import annotations
 import json
 import os
 from pathlib import Path
-from typing import Any, Mapping
+from typing import Any, Iterable, Mapping
 
 import numpy as np
 
 from ..errors import CorpusError
 from .settings import StoreSettings
 
-__all__ = ["CorpusStore", "StoreWriter", "open_corpus", "encode", "decode", "quantization_note", "write_json", "INDEX_COLUMNS", "STORE_VERSION"]
+__all__ = ["CorpusStore", "StoreWriter", "CodeHistogram", "open_corpus", "encode", "decode", "quantization_note", "write_json", "INDEX_COLUMNS", "STORE_VERSION"]
 
 STORE_VERSION = 1
 INDEX_COLUMNS = {"source": "int32", "axis": "int8", "z": "int32", "y": "int32", "x": "int32", "scale": "float32"}
@@ -45,30 +45,77 @@ def write_json(path: str | os.PathLike[str], data: Any) -> None:
     os.replace(tmp, path)
 
 
-def encode(x: np.ndarray, s: StoreSettings) -> tuple[np.ndarray, dict[str, float]]:
+def encode(x: np.ndarray, encoding: Mapping[str, Any]) -> tuple[np.ndarray, dict[str, float]]:
     """Encode normalized float32 patches for storage.
+
+    Parameters
+    ----------
+    x : ndarray
+        Normalized values.
+    encoding : dict
+        ``{"dtype": "uint16", "uint16_range": [lo, hi]}`` or ``{"dtype": "float16"}``
+        (``CorpusSettings.encoding()``).
 
     Returns
     -------
     codes : ndarray
         float16 or uint16.
     error : dict
-        ``max_abs_error`` (measured on these patches) and ``clipped`` (values outside the code range).
+        ``max_abs_error`` (measured on every 16th value: a sample, to keep encoding cheap) and
+        ``clipped`` (values outside the code range, all counted).
     """
     x = np.asarray(x, dtype=np.float32)
-    if s.dtype == "float16":
-        big = np.abs(x) > 65504.0
-        codes = np.clip(x, -65504.0, 65504.0).astype(np.float16)
-        err = float(np.max(np.abs(codes.astype(np.float32) - x), initial=0.0)) if x.size else 0.0
-        return codes, {"max_abs_error": err, "clipped": int(big.sum())}
-    lo, hi = s.uint16_range
-    scaled = (x - lo) * (65535.0 / (hi - lo))
-    clipped = int(((scaled < 0) | (scaled > 65535)).sum())
-    codes = np.clip(np.rint(scaled), 0, 65535).astype(np.uint16)
-    back = decode(codes, {"dtype": "uint16", "uint16_range": [lo, hi]})
-    inside = (x >= lo) & (x <= hi)
-    err = float(np.max(np.abs(back - x)[inside], initial=0.0)) if x.size else 0.0
+    if x.size == 0:
+        return x.astype(np.float16 if encoding["dtype"] == "float16" else np.uint16), {"max_abs_error": 0.0, "clipped": 0}
+    sample = x.reshape(-1)[::16]
+    if encoding["dtype"] == "float16":
+        lo, hi = float(x.min()), float(x.max())
+        clipped = 0
+        if lo < -65504.0 or hi > 65504.0:  # beyond float16's range: clip rather than store inf
+            clipped = int((np.abs(x) > 65504.0).sum())
+            x = np.clip(x, -65504.0, 65504.0)
+        codes = x.astype(np.float16)
+        err = float(np.max(np.abs(codes.reshape(-1)[::16].astype(np.float32) - sample)))
+        return codes, {"max_abs_error": err, "clipped": clipped}
+    lo, hi = encoding["uint16_range"]
+    scale = np.float32(65535.0 / (hi - lo))
+    scaled = np.multiply(x, scale)
+    scaled += np.float32(0.5 - lo * scale)  # +0.5 then truncation = round half up
+    clipped = int(np.count_nonzero(scaled < 0.5)) + int(np.count_nonzero(scaled > 65535.5))
+    np.clip(scaled, 0, 65535.0, out=scaled)
+    codes = scaled.astype(np.uint16)
+    back = decode(codes.reshape(-1)[::16], encoding)
+    inside = (sample >= lo) & (sample <= hi)
+    err = float(np.max(np.abs(back - sample)[inside], initial=0.0))
     return codes, {"max_abs_error": err, "clipped": clipped}
+
+
+class CodeHistogram:
+    """Exact statistics of stored values from a histogram of their 16-bit codes.
+
+    Counting codes (``bincount`` over 65536 bins) is several times cheaper than statistics on the
+    float values, and describes exactly what the store holds (after quantization).
+    """
+
+    def __init__(self) -> None:
+        self.counts = np.zeros(65536, dtype=np.int64)
+
+    def update(self, codes: np.ndarray) -> None:
+        self.counts += np.bincount(np.ascontiguousarray(codes).view(np.uint16).ravel(), minlength=65536)
+
+    def summary(self, encoding: Mapping[str, Any], lo: float, hi: float, bins: int = 256) -> dict[str, Any]:
+        """``n``, ``sum``, ``sumsq``, ``below``/``above`` the range and ``bins`` counts over [lo, hi]."""
+        used = np.flatnonzero(self.counts)
+        codes = used.astype(np.uint16)
+        if encoding["dtype"] == "float16":
+            codes = codes.view(np.float16)
+        v = decode(codes, encoding).astype(np.float64)
+        c = self.counts[used]
+        inside = (v >= lo) & (v <= hi)
+        idx = np.minimum(((v[inside] - lo) * (bins / (hi - lo))).astype(np.int64), bins - 1)
+        hist = np.bincount(idx, weights=c[inside], minlength=bins).astype(np.int64)
+        return {"n": int(c.sum()), "sum": float(np.dot(c, v)), "sumsq": float(np.dot(c, v * v)),
+                "below": int(c[v < lo].sum()), "above": int(c[v > hi].sum()), "range": [lo, hi], "counts": hist.tolist()}
 
 
 def decode(codes: np.ndarray, encoding: Mapping[str, Any]) -> np.ndarray:
@@ -79,11 +126,11 @@ def decode(codes: np.ndarray, encoding: Mapping[str, Any]) -> np.ndarray:
     return (np.asarray(codes, dtype=np.float32) * np.float32((hi - lo) / 65535.0) + np.float32(lo)).astype(np.float32)
 
 
-def quantization_note(s: StoreSettings) -> dict[str, Any]:
+def quantization_note(encoding: Mapping[str, Any]) -> dict[str, Any]:
     """The stated (worst-case) quantization error of an encoding."""
-    if s.dtype == "float16":
+    if encoding["dtype"] == "float16":
         return {"dtype": "float16", "bound": "relative error <= 2^-11 (half a float16 ulp); |x| > 65504 clipped"}
-    lo, hi = s.uint16_range
+    lo, hi = encoding["uint16_range"]
     step = (hi - lo) / 65535.0
     return {"dtype": "uint16", "uint16_range": [lo, hi], "step": step,
             "bound": f"absolute error <= {step / 2:.3g} (half a step) inside [{lo}, {hi}]; values outside clipped"}
@@ -170,17 +217,16 @@ class StoreWriter:
                     )
             self.root = zarr.open_group(str(self.path), mode="r+")
             self.patches = self.root["patches"]
-            self.index = {c: self.root["index"][c] for c in INDEX_COLUMNS}
         else:
             if self.path.exists() and any(self.path.iterdir()):
                 raise CorpusError(f"{self.path}: exists and is not a corpus build; choose an empty or new folder")
             self.path.mkdir(parents=True, exist_ok=True)
             self.root = zarr.open_group(str(self.path), mode="w", zarr_format=3)
+            from zarr.codecs import BloscCodec
+
+            compressors = None if s.compression == "none" else BloscCodec(cname=s.compression, clevel=5, shuffle="shuffle")
             self.patches = self.root.create_array("patches", shape=(0,) + patch_shape, dtype=dtype,
-                                                  chunks=(s.chunk_patches,) + patch_shape)
-            idx = self.root.create_group("index")
-            self.index = {c: idx.create_array(c, shape=(0,), dtype=t, chunks=(max(4096, s.chunk_patches * 16),))
-                          for c, t in INDEX_COLUMNS.items()}
+                                                  chunks=(s.chunk_patches,) + patch_shape, compressors=compressors)
             self.journal_dir.mkdir(exist_ok=True)
             write_json(build_file, build)
         self.journal_dir.mkdir(exist_ok=True)
@@ -191,27 +237,52 @@ class StoreWriter:
         return sorted(out, key=lambda r: r["position"])
 
     def recover(self) -> list[dict[str, Any]]:
-        """Cut the arrays back to the journalled patches; return the journalled records."""
+        """Cut the patches back to the journalled ones; return the journalled records."""
         recs = self.records()
         n = max((r["stop"] for r in recs), default=0)
         if self.patches.shape[0] != n:
             self.patches.resize((n,) + tuple(self.patches.shape[1:]))
-        for arr in self.index.values():
-            if arr.shape[0] != n:
-                arr.resize((n,))
         (self.path / "manifest.json").unlink(missing_ok=True)
         return recs
 
-    def append(self, codes: np.ndarray, columns: Mapping[str, np.ndarray], record: dict[str, Any]) -> dict[str, Any]:
-        """Append one source's patches and index rows, then journal it."""
+    def append(self, codes: np.ndarray | Iterable[np.ndarray], columns: Mapping[str, np.ndarray],
+               record: dict[str, Any]) -> dict[str, Any]:
+        """Append one source's patches (an array, or an iterable of arrays to stream), then journal
+        it: its index rows, then its record."""
         start = int(self.patches.shape[0])
-        m = int(len(codes))
-        if m:
-            self.patches.resize((start + m,) + tuple(self.patches.shape[1:]))
-            self.patches[start:start + m] = codes
-            for c, arr in self.index.items():
-                arr.resize((start + m,))
-                arr[start:start + m] = np.asarray(columns[c], dtype=INDEX_COLUMNS[c])
-        record = dict(record, start=start, stop=start + m)
-        write_json(self.journal_dir / f"{record['position']:06d}.json", record)
+        stop = start
+        for part in ([codes] if isinstance(codes, np.ndarray) else codes):
+            m = int(len(part))
+            if m:
+                self.patches.resize((stop + m,) + tuple(self.patches.shape[1:]))
+                self.patches[stop:stop + m] = part
+                stop += m
+        record = dict(record, start=start, stop=stop)
+        stem = self.journal_dir / f"{record['position']:06d}"
+        tmp = stem.with_name(f".{stem.name}.index.npz")
+        with open(tmp, "wb") as fh:
+            np.savez(fh, **{c: np.asarray(columns[c], dtype=t).reshape(-1) for c, t in INDEX_COLUMNS.items()})
+        os.replace(tmp, stem.with_suffix(".index.npz"))
+        write_json(stem.with_suffix(".json"), record)
         return record
+
+    def finish_index(self) -> None:
+        """Write the provenance index (one array per column) from the journal, in patch order.
+
+        The rows travel with each source's journal record during the build and are written once
+        here: a few large writes instead of several small ones per source.
+        """
+        parts = {c: [] for c in INDEX_COLUMNS}
+        for r in self.records():
+            with np.load(self.journal_dir / f"{r['position']:06d}.index.npz") as z:
+                for c in INDEX_COLUMNS:
+                    parts[c].append(z[c])
+        n = int(self.patches.shape[0])
+        group = self.root.create_group("index", overwrite=True)
+        for c, t in INDEX_COLUMNS.items():
+            col = np.concatenate(parts[c]) if parts[c] else np.empty(0, t)
+            if len(col) != n:
+                raise CorpusError(f"{self.path}: index column {c} has {len(col)} rows for {n} patches")
+            arr = group.create_array(c, shape=(n,), dtype=t, chunks=(max(1, min(n, 1 << 20)),))
+            if n:
+                arr[:] = col.astype(t)
