@@ -73,6 +73,14 @@ def build_parser() -> argparse.ArgumentParser:
     show.add_argument("--no-report", action="store_true", help="only print, do not write report/")
     show.add_argument("--json", action="store_true")
 
+    demo = sub.add_parser("demo", help="generate a demo archive and run the pipeline on it",
+                          description="Write a ceramics lab's archive of sintered-filter scans (mixed formats, bit depths "
+                                      "and scanners), then scan it and build a corpus. Rerunning with --out reuses "
+                                      "finished stages.")
+    demo.add_argument("--out", metavar="DIR", help="keep everything in DIR (default: a temporary folder)")
+    demo.add_argument("--quick", action="store_true", help="fewer, smaller volumes")
+    demo.add_argument("--json", action="store_true")
+
     merge = csub.add_parser("merge", help="merge shard stores into one")
     merge.add_argument("shards", nargs="+", metavar="SHARD")
     merge.add_argument("-o", "--output", required=True, metavar="CORPUS")
@@ -214,6 +222,16 @@ def cmd_corpus_merge(args: argparse.Namespace) -> int:
     return 0
 
 
+def cmd_demo(args: argparse.Namespace) -> int:
+    from .demo.run import run_demo
+
+    echo = (lambda _line: None) if args.json else print
+    result = run_demo(args.out, quick=args.quick, progress=not args.quiet, echo=echo)
+    if args.json:
+        _print_json(result)
+    return 0
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Run the command line; returns the exit status."""
     args = build_parser().parse_args(argv)
@@ -224,9 +242,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     # tifffile logs its own complaint before raising; our error message already names the file.
     logging.getLogger("tifffile").setLevel(logging.CRITICAL)
 
-    handlers = {"scan": cmd_scan, ("corpus", "build"): cmd_corpus_build, ("corpus", "show"): cmd_corpus_show,
+    handlers = {"scan": cmd_scan, "demo": cmd_demo, ("corpus", "build"): cmd_corpus_build, ("corpus", "show"): cmd_corpus_show,
                 ("corpus", "merge"): cmd_corpus_merge}
-    key = args.command if args.command == "scan" else (args.command, args.corpus_command)
+    key = (args.command, args.corpus_command) if args.command == "corpus" else args.command
     try:
         return handlers[key](args)
     except WarmstartError as err:
