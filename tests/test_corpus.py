@@ -110,6 +110,8 @@ def test_bad_sources_are_skipped_with_reasons(broken_archive, tmp_path):
     assert not failed_pos & set(np.unique(store.index()["source"]).tolist())
     summary = (res.path / "report" / "summary.md").read_text()
     assert "Skipped sources" in summary and "flat.npy" in summary
+    assert "README.txt: not an image format" in summary  # a non-image file is named, not silently dropped
+    assert [i["path"].endswith("README.txt") for i in store.manifest["ignored"]] == [True]
 
 
 def test_report_files(small_archive, tmp_path):

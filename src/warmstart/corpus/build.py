@@ -109,8 +109,8 @@ def process_source(job: dict[str, Any]) -> dict[str, Any]:
     t0 = time.perf_counter()
     rec: dict[str, Any] = {"position": pos, "name": cand.name, "path": cand.path, "format": cand.format,
                            "status": "ok", "reason": None, "warnings": []}
-    k, p = s.sampling.channels, s.sampling.patch_size
-    cols: dict[str, list[np.ndarray]] = {c: [] for c in INDEX_COLUMNS}
+    p = s.sampling.patch_size
+    cols: dict[str, np.ndarray] = {}
     try:
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
@@ -127,32 +127,9 @@ def process_source(job: dict[str, Any]) -> dict[str, Any]:
                         f"{cand.path}: volume {vol.shape} is smaller than one patch "
                         f"({p} px at downscale factors {[round(f, 3) for f in factors]})"
                     )
-                filt = PatchFilter(s.filters, background_level(ref, s.filters))
-                stats = CodeHistogram()
-                enc = s.encoding()
-                qerr = {"max_abs_error": 0.0, "clipped": 0}
-                budget = s.memory_mb * 2**20 // 4
-                with open(staging, "wb") as fh:
-                    for patches, idx in extract_patches(vol.read, vol.shape, vol.dtype.itemsize, plan, (k, p, p),
-                                                        ref.apply, filt, budget):
-                        codes, err = encode(patches, enc)
-                        fh.write(codes.tobytes())
-                        stats.update(codes)
-                        qerr = {"max_abs_error": max(qerr["max_abs_error"], err["max_abs_error"]),
-                                "clipped": qerr["clipped"] + err["clipped"]}
-                        axis = plan.axis[idx]
-                        start = plan.start[idx]
-                        cols["source"].append(np.full(len(idx), pos))
-                        cols["axis"].append(axis)
-                        cols["z"].append(start[:, 0])
-                        cols["y"].append(start[:, 1])
-                        cols["x"].append(start[:, 2])
-                        inplane = np.array([(factors[1] + factors[2]) / 2, (factors[0] + factors[2]) / 2,
-                                            (factors[0] + factors[1]) / 2])
-                        cols["scale"].append(inplane[axis])
+                counts, stats, qerr, cols = _sample_volume(vol, ref, plan, factors, s, pos, staging)
             rec.update(volume=vol.describe(), reference=ref.to_dict(), factors=list(factors),
-                       counts=filt.counts.to_dict(), quantization=qerr,
-                       stats=stats.summary(enc, *s.histogram_range()))
+                       counts=counts, quantization=qerr, stats=stats)
             rec["warnings"] = notes + [str(w.message) for w in caught]
             if ref.stats["n_nonfinite"]:
                 rec["warnings"].append(f"{ref.stats['n_nonfinite']} NaN/Inf voxels in the intensity sample (excluded)")
@@ -164,10 +141,41 @@ def process_source(job: dict[str, Any]) -> dict[str, Any]:
         staging.unlink(missing_ok=True)
         rec["columns"] = {c: np.empty(0) for c in INDEX_COLUMNS}
     else:
-        rec["columns"] = {c: (np.concatenate(v) if v else np.empty(0)) for c, v in cols.items()}
+        rec["columns"] = cols
         rec["staging_file"] = str(staging)
     rec["seconds"] = round(time.perf_counter() - t0, 3)
     return rec
+
+
+def _sample_volume(vol: Any, ref: Any, plan: Any, factors: tuple[float, float, float], s: CorpusSettings,
+                   pos: int, staging: Path) -> tuple[dict[str, int], dict[str, Any], dict[str, Any], dict[str, np.ndarray]]:
+    """Extract, filter and encode one volume's planned patches into ``staging``.
+
+    Returns the filter counts, the statistics of the stored codes, the quantization error and
+    the index columns of the kept patches.
+    """
+    k, p = s.sampling.channels, s.sampling.patch_size
+    filt = PatchFilter(s.filters, background_level(ref, s.filters))
+    stats = CodeHistogram()
+    enc = s.encoding()
+    qerr = {"max_abs_error": 0.0, "clipped": 0}
+    cols: dict[str, list[np.ndarray]] = {c: [] for c in INDEX_COLUMNS}
+    # in-plane downscale factor of a patch sliced along Z, Y, X
+    inplane = np.array([(factors[1] + factors[2]) / 2, (factors[0] + factors[2]) / 2, (factors[0] + factors[1]) / 2])
+    with open(staging, "wb") as fh:
+        for patches, idx in extract_patches(vol.read, vol.shape, vol.dtype.itemsize, plan, (k, p, p), ref.apply, filt,
+                                            s.memory_mb * 2**20 // 4):
+            codes, err = encode(patches, enc)
+            fh.write(codes.tobytes())
+            stats.update(codes)
+            qerr = {"max_abs_error": max(qerr["max_abs_error"], err["max_abs_error"]),
+                    "clipped": qerr["clipped"] + err["clipped"]}
+            axis, start = plan.axis[idx], plan.start[idx]
+            for c, values in (("source", np.full(len(idx), pos)), ("axis", axis), ("z", start[:, 0]),
+                              ("y", start[:, 1]), ("x", start[:, 2]), ("scale", inplane[axis])):
+                cols[c].append(values)
+    columns = {c: (np.concatenate(v) if v else np.empty(0)) for c, v in cols.items()}
+    return filt.counts.to_dict(), stats.summary(enc, *s.histogram_range()), qerr, columns
 
 
 def _prepare_output(out: Path, fresh: bool) -> None:
@@ -225,7 +233,7 @@ def build_corpus(
     chosen = [i for i in range(len(candidates)) if shard is None or i % shard[1] == shard[0]]
     build = {"format_version": 1, "warmstart_version": __version__, "archive": str(Path(archive).absolute()),
              "archive_names": names, "sources": chosen, "shard": list(shard) if shard else None,
-             "settings": s.identity()}
+             "settings": s.identity(), "ignored": [{"path": i.path, "reason": i.reason} for i in ignored]}
     _prepare_output(out, fresh)
     if (out / "manifest.json").exists():
         raise CorpusError(f"{out}: a finished corpus is already there; use --fresh to rebuild or a new folder")

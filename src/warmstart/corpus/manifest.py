@@ -78,4 +78,5 @@ def build_manifest(build: dict[str, Any], records: list[dict[str, Any]], s: Corp
         "modalities": modalities,
         "clinical": any(r["volume"]["meta"].get("clinical") for r in ok),
         "sources": [_source_entry(r) for r in records],
+        "ignored": build.get("ignored", []),
     }

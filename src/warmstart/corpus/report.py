@@ -158,4 +158,6 @@ def _markdown(m: dict[str, Any], rows: list[dict[str, Any]]) -> str:
     bad = [r for r in rows if r["status"] != "ok"]
     if bad:
         lines += ["", "## Skipped sources", ""] + [f"- {r['name']}: {r['reason']}" for r in bad]
+    if m.get("ignored"):
+        lines += ["", "## Files that are not images (ignored)", ""] + [f"- {i['path']}: {i['reason']}" for i in m["ignored"]]
     return "\n".join(lines) + "\n"
