@@ -135,6 +135,64 @@ def test_two_workers_equal_one(small_archive, tmp_path):
     _same_store(one.path, two.path)
 
 
+def test_parts_change_nothing_but_the_duplicate_rule(small_archive, tmp_path):
+    """Sources split into Z slabs give the same store as whole sources (duplicate rule off)."""
+    from dataclasses import replace
+
+    from warmstart.corpus.build import source_parts
+    from warmstart.corpus.settings import FilterSettings
+    from warmstart.volumes import discover
+
+    base = replace(SMALL, filters=FilterSettings(duplicate_threshold=0))
+    split = replace(base, part_mb=0.02)  # 20 kB parts: every fixture source in several slabs
+    assert all(source_parts(c, split.part_mb) > 1 for c in discover(small_archive)[0])
+    whole = build_corpus(small_archive, tmp_path / "whole.zarr", base, report=False, progress=False)
+    parts = build_corpus(small_archive, tmp_path / "parts.zarr", split, report=False, progress=False)
+    sw, sp = open_corpus(whole.path), open_corpus(parts.path)
+    np.testing.assert_array_equal(sw.patches[:], sp.patches[:])
+    for c in INDEX_COLUMNS:
+        np.testing.assert_array_equal(sw.index()[c], sp.index()[c])
+    a, b = sw.manifest["statistics"], sp.manifest["statistics"]
+    assert a["histogram"] == b["histogram"] and a["values"] == b["values"]
+    assert a["mean"] == pytest.approx(b["mean"], rel=1e-12) and a["std"] == pytest.approx(b["std"], rel=1e-12)
+    assert [e["counts"] for e in sw.manifest["sources"]] == [e["counts"] for e in sp.manifest["sources"]]
+    assert min(e["parts"] for e in sp.manifest["sources"]) > 1
+
+
+@pytest.mark.slow
+def test_parts_in_parallel_equal_sequential(small_archive, tmp_path):
+    from dataclasses import replace
+
+    split = replace(SMALL, part_mb=0.03)
+    one = build_corpus(small_archive, tmp_path / "one.zarr", split, report=False, progress=False)
+    two = build_corpus(small_archive, tmp_path / "two.zarr", replace(split, workers=2), report=False, progress=False)
+    _same_store(one.path, two.path)
+
+
+def test_a_failing_part_drops_the_whole_source(small_archive, tmp_path, monkeypatch):
+    from dataclasses import replace
+
+    import warmstart.corpus.build as build_mod
+
+    real = build_mod.process_source
+
+    def flaky(job):
+        rec = real(job)
+        if job["candidate"].name == "seed.npy" and job["part"] == job["n_parts"] - 1:
+            (Path(rec.pop("staging_file", "")) if rec.get("staging_file") else Path("/nonexistent")).unlink(missing_ok=True)
+            rec.update(status="failed", reason="seed.npy: simulated read error in the last slab")
+        return rec
+
+    monkeypatch.setattr(build_mod, "process_source", flaky)
+    res = build_corpus(small_archive, tmp_path / "c.zarr", replace(SMALL, part_mb=0.02), report=False, progress=False)
+    assert dict(res.failed) == {"seed.npy": "seed.npy: simulated read error in the last slab"}
+    store = open_corpus(res.path)
+    seed = next(e for e in store.manifest["sources"] if e["name"] == "seed.npy")
+    assert seed["patch_range"][0] == seed["patch_range"][1]
+    assert seed["position"] not in set(store.index()["source"].tolist())
+    assert sum(e["patch_range"][1] - e["patch_range"][0] for e in store.manifest["sources"]) == len(store)
+
+
 def test_shards_merged_equal_single_build(small_archive, tmp_path):
     full = build_corpus(small_archive, tmp_path / "full.zarr", SMALL, report=False, progress=False)
     shards = [build_corpus(small_archive, tmp_path / f"s{i}.zarr", SMALL, shard=f"{i}/3", report=False, progress=False)

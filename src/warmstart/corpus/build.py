@@ -8,6 +8,7 @@ on the settings, the seed and the source's name (see :func:`~warmstart.corpus.sa
 """
 from __future__ import annotations
 
+import math
 import os
 import shutil
 import time
@@ -29,7 +30,7 @@ from .sampling import PatchFilter, background_level, downscale_factors, extract_
 from .settings import CorpusSettings
 from .store import INDEX_COLUMNS, CodeHistogram, StoreWriter, encode, write_json
 
-__all__ = ["build_corpus", "BuildResult", "process_source", "parse_shard", "EXIT_SKIPPED"]
+__all__ = ["build_corpus", "BuildResult", "process_source", "source_parts", "merge_parts", "parse_shard", "EXIT_SKIPPED"]
 
 #: Exit status of a build (CLI) that finished but skipped unreadable sources.
 EXIT_SKIPPED = 3
@@ -94,7 +95,8 @@ def process_source(job: dict[str, Any]) -> dict[str, Any]:
     ----------
     job : dict
         ``candidate`` (Candidate), ``position`` (int), ``settings`` (CorpusSettings as dict),
-        ``staging`` (folder).
+        ``staging`` (folder), optionally ``part`` and ``n_parts`` (this job does Z slab ``part``
+        of ``n_parts``; see :func:`source_parts`).
 
     Returns
     -------
@@ -105,7 +107,8 @@ def process_source(job: dict[str, Any]) -> dict[str, Any]:
     cand: Candidate = job["candidate"]
     s = CorpusSettings.from_dict(job["settings"])
     pos = int(job["position"])
-    staging = Path(job["staging"]) / f"{pos:06d}.codes"
+    part, n_parts = int(job.get("part", 0)), int(job.get("n_parts", 1))
+    staging = Path(job["staging"]) / f"{pos:06d}-{part:04d}.codes"
     t0 = time.perf_counter()
     rec: dict[str, Any] = {"position": pos, "name": cand.name, "path": cand.path, "format": cand.format,
                            "status": "ok", "reason": None, "warnings": []}
@@ -127,6 +130,8 @@ def process_source(job: dict[str, Any]) -> dict[str, Any]:
                         f"{cand.path}: volume {vol.shape} is smaller than one patch "
                         f"({p} px at downscale factors {[round(f, 3) for f in factors]})"
                     )
+                if n_parts > 1:
+                    plan = plan.part(part, n_parts, vol.shape[0])
                 counts, stats, qerr, cols = _sample_volume(vol, ref, plan, factors, s, pos, staging)
             rec.update(volume=vol.describe(), reference=ref.to_dict(), factors=list(factors),
                        counts=counts, quantization=qerr, stats=stats)
@@ -143,7 +148,40 @@ def process_source(job: dict[str, Any]) -> dict[str, Any]:
     else:
         rec["columns"] = cols
         rec["staging_file"] = str(staging)
+    rec["part"], rec["n_parts"] = part, n_parts
     rec["seconds"] = round(time.perf_counter() - t0, 3)
+    return rec
+
+
+def source_parts(cand: Candidate, part_mb: float) -> int:
+    """How many Z slabs a source is processed in: its size on disk over ``part_mb`` megabytes."""
+    p = Path(cand.path)
+    files = cand.files or ((p,) if p.is_file() else tuple(q for q in p.rglob("*") if q.is_file()))
+    size = sum(os.path.getsize(f) for f in files)
+    return max(1, math.ceil(size / (part_mb * 1e6)))
+
+
+_BASE_KEYS = ("position", "name", "path", "format", "status", "reason", "warnings")
+
+
+def merge_parts(parts: list[dict[str, Any]]) -> dict[str, Any]:
+    """One journal record from the records of a source's parts (counts and statistics add up)."""
+    first = parts[0]
+    bad = [r for r in parts if r["status"] != "ok"]
+    seconds = round(sum(r["seconds"] for r in parts), 3)
+    if bad:
+        return {**{k: first[k] for k in _BASE_KEYS}, "status": "failed", "reason": bad[0]["reason"], "seconds": seconds}
+    rec = {k: v for k, v in first.items() if k not in ("columns", "staging_file", "part", "n_parts")}
+    st = [r["stats"] for r in parts]
+    rec.update(
+        counts={k: sum(r["counts"][k] for r in parts) for k in first["counts"]},
+        stats={**{k: sum(x[k] for x in st) for k in ("n", "sum", "sumsq", "below", "above")}, "range": st[0]["range"],
+               "counts": np.sum([x["counts"] for x in st], axis=0).astype(int).tolist()},
+        quantization={"max_abs_error": max(r["quantization"]["max_abs_error"] for r in parts),
+                      "clipped": sum(r["quantization"]["clipped"] for r in parts)},
+        warnings=list(dict.fromkeys(w for r in parts for w in r["warnings"])),
+        seconds=seconds, parts=len(parts),
+    )
     return rec
 
 
@@ -246,22 +284,23 @@ def build_corpus(
     staging = out / "staging"
     shutil.rmtree(staging, ignore_errors=True)
     staging.mkdir()
-    jobs = [{"candidate": candidates[i], "position": i, "settings": s.to_dict(), "staging": str(staging)} for i in remaining]
+    jobs = []
+    for i in remaining:
+        n = source_parts(candidates[i], s.part_mb)
+        jobs += [{"candidate": candidates[i], "position": i, "part": j, "n_parts": n, "settings": s.to_dict(),
+                  "staging": str(staging)} for j in range(n)]
     bar = tqdm(total=len(chosen), initial=len(done), desc="corpus: sources", unit="src", disable=not progress, leave=False)
+    code_dtype = np.dtype(np.float16 if s.store.dtype == "float16" else np.uint16)
+    assembler = _SourceAssembler(writer, code_dtype, (k, p, p), 8 * s.store.chunk_patches)
     n_patches = sum(r["stop"] - r["start"] for r in done)
 
     def commit(rec: dict[str, Any]) -> None:
         nonlocal n_patches
-        cols = rec.pop("columns")
-        sfile = rec.pop("staging_file", None)
-        parts = _staged_parts(sfile, np.dtype(np.float16 if s.store.dtype == "float16" else np.uint16),
-                              (k, p, p), 8 * s.store.chunk_patches) if sfile else iter(())
-        rec = writer.append(parts, cols, rec)
-        if sfile:
-            os.unlink(sfile)
-        n_patches += rec["stop"] - rec["start"]
-        bar.update(1)
-        bar.set_postfix(patches=n_patches)
+        journalled = assembler.add(rec)
+        if journalled is not None:
+            n_patches += journalled["stop"] - journalled["start"]
+            bar.update(1)
+            bar.set_postfix(patches=n_patches)
 
     if s.workers == 1 or len(jobs) <= 1:
         for job in jobs:
@@ -281,6 +320,35 @@ def build_corpus(
     failed = [(r["name"], r["reason"]) for r in records if r["status"] != "ok"]
     return BuildResult(out, manifest["patches"]["count"], len(chosen), failed,
                        [(i.path, i.reason) for i in ignored], time.perf_counter() - t0, len(done))
+
+
+class _SourceAssembler:
+    """Commits part records in job order: appends each part's patches as it comes, journals the
+    source after its last part, and cuts a source back out if one of its parts failed."""
+
+    def __init__(self, writer: StoreWriter, dtype: np.dtype, shape: tuple[int, int, int], per_read: int) -> None:
+        self.writer, self.dtype, self.shape, self.per_read = writer, dtype, shape, per_read
+        self.parts: list[dict[str, Any]] = []
+        self.start = 0
+
+    def add(self, rec: dict[str, Any]) -> dict[str, Any] | None:
+        if not self.parts:
+            self.start = int(self.writer.patches.shape[0])
+        sfile = rec.pop("staging_file", None)
+        if sfile:
+            if all(r["status"] == "ok" for r in self.parts):
+                self.writer.add_patches(_staged_parts(sfile, self.dtype, self.shape, self.per_read))
+            os.unlink(sfile)
+        self.parts.append(rec)
+        if len(self.parts) < int(rec.get("n_parts", 1)):
+            return None
+        merged = merge_parts(self.parts)
+        columns = {c: np.concatenate([r["columns"][c] for r in self.parts]) for c in INDEX_COLUMNS}
+        if merged["status"] != "ok":
+            self.writer.truncate(self.start)
+            columns = {c: np.empty(0) for c in INDEX_COLUMNS}
+        self.parts = []
+        return self.writer.journal(merged, columns, self.start)
 
 
 def _staged_parts(path: str, dtype: np.dtype, shape: tuple[int, int, int], per_part: int):

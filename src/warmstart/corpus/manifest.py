@@ -43,7 +43,7 @@ def _source_entry(r: dict[str, Any]) -> dict[str, Any]:
             sha256=vol["source"]["sha256"], hash_kind=vol["source"]["hash_kind"], size_bytes=vol["source"]["size_bytes"],
             shape=vol["shape"], dtype=vol["dtype"], voxel_size_um=vol["voxel_size_um"], meta=vol["meta"],
             reference=r["reference"], downscale_factors=r["factors"], counts=r["counts"],
-            quantization=r["quantization"],
+            quantization=r["quantization"], parts=r.get("parts", 1),
             patch_mean=r["stats"]["sum"] / r["stats"]["n"] if r["stats"]["n"] else None,
         )
     return entry

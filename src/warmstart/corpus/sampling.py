@@ -69,6 +69,17 @@ class PatchPlan:
     def __len__(self) -> int:
         return int(self.axis.size)
 
+    def subset(self, mask: np.ndarray) -> "PatchPlan":
+        """The planned patches where ``mask`` is true, in the same order."""
+        return PatchPlan(self.axis[mask], self.start[mask], self.extent)
+
+    def part(self, i: int, n: int, depth: int) -> "PatchPlan":
+        """Part ``i`` of ``n``: the patches whose block starts in the i-th of n equal Z slabs of a
+        volume ``depth`` slices deep."""
+        lo, hi = (round(j * depth / n) for j in (i, i + 1))
+        z = self.start[:, 0]
+        return self.subset((z >= lo) & (z < hi))
+
     def stop(self) -> np.ndarray:
         ext = np.zeros((len(self), 3), dtype=np.int64)
         for a, e in self.extent.items():

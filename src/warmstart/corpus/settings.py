@@ -175,7 +175,10 @@ class StoreSettings:
 class CorpusSettings:
     """Everything that decides which patches a build writes (the ``[corpus]`` recipe section).
 
-    ``workers`` and ``memory_mb`` change speed and memory, never the patches.
+    ``workers`` and ``memory_mb`` change speed and memory, never the patches. ``part_mb`` splits
+    sources larger than that many megabytes on disk into slabs along Z that workers process in
+    parallel; it is part of the build's identity because the duplicate rule starts afresh in
+    each part (and each part fits the same intensity reference from the same sample itself).
     """
 
     read: ReadSettings = field(default_factory=ReadSettings)
@@ -185,8 +188,11 @@ class CorpusSettings:
     store: StoreSettings = field(default_factory=StoreSettings)
     workers: int = 1
     memory_mb: int = 256
+    part_mb: float = 1024.0
 
     def __post_init__(self) -> None:
+        if not self.part_mb > 0:
+            raise RecipeError(f"part_mb must be positive, got {self.part_mb}")
         if self.workers < 1:
             raise RecipeError(f"workers must be >= 1, got {self.workers}")
         if self.memory_mb < 16:

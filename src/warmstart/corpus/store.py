@@ -239,25 +239,29 @@ class StoreWriter:
     def recover(self) -> list[dict[str, Any]]:
         """Cut the patches back to the journalled ones; return the journalled records."""
         recs = self.records()
-        n = max((r["stop"] for r in recs), default=0)
-        if self.patches.shape[0] != n:
-            self.patches.resize((n,) + tuple(self.patches.shape[1:]))
+        self.truncate(max((r["stop"] for r in recs), default=0))
         (self.path / "manifest.json").unlink(missing_ok=True)
         return recs
 
-    def append(self, codes: np.ndarray | Iterable[np.ndarray], columns: Mapping[str, np.ndarray],
-               record: dict[str, Any]) -> dict[str, Any]:
-        """Append one source's patches (an array, or an iterable of arrays to stream), then journal
-        it: its index rows, then its record."""
-        start = int(self.patches.shape[0])
-        stop = start
+    def add_patches(self, codes: np.ndarray | Iterable[np.ndarray]) -> int:
+        """Append patches (an array, or an iterable of arrays to stream); return the new length."""
+        stop = int(self.patches.shape[0])
         for part in ([codes] if isinstance(codes, np.ndarray) else codes):
             m = int(len(part))
             if m:
                 self.patches.resize((stop + m,) + tuple(self.patches.shape[1:]))
                 self.patches[stop:stop + m] = part
                 stop += m
-        record = dict(record, start=start, stop=stop)
+        return stop
+
+    def truncate(self, n: int) -> None:
+        """Cut the patches back to ``n`` (drops a source that failed half-way)."""
+        if self.patches.shape[0] != n:
+            self.patches.resize((n,) + tuple(self.patches.shape[1:]))
+
+    def journal(self, record: dict[str, Any], columns: Mapping[str, np.ndarray], start: int) -> dict[str, Any]:
+        """Journal a source whose patches are ``start:`` the current end: index rows, then record."""
+        record = dict(record, start=int(start), stop=int(self.patches.shape[0]))
         stem = self.journal_dir / f"{record['position']:06d}"
         tmp = stem.with_name(f".{stem.name}.index.npz")
         with open(tmp, "wb") as fh:
@@ -265,6 +269,13 @@ class StoreWriter:
         os.replace(tmp, stem.with_suffix(".index.npz"))
         write_json(stem.with_suffix(".json"), record)
         return record
+
+    def append(self, codes: np.ndarray | Iterable[np.ndarray], columns: Mapping[str, np.ndarray],
+               record: dict[str, Any]) -> dict[str, Any]:
+        """Append one source's patches, then journal it."""
+        start = int(self.patches.shape[0])
+        self.add_patches(codes)
+        return self.journal(record, columns, start)
 
     def finish_index(self) -> None:
         """Write the provenance index (one array per column) from the journal, in patch order.
