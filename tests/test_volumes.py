@@ -314,3 +314,16 @@ def test_time_axis_warns(tmp_path):
         vol = open_volume(tmp_path / "t.tif")
     assert any("time points" in str(w.message) for w in caught)
     np.testing.assert_array_equal(vol.read(), a[0])
+
+
+def test_pydicom_multiframe_and_colour_files():
+    from pydicom import dcmread
+    from pydicom.data import get_testdata_file
+
+    path = get_testdata_file("rtdose.dcm")  # pydicom's shipped 15-frame RT dose grid
+    vol = open_volume(path)
+    ref = dcmread(path).pixel_array
+    assert vol.shape == ref.shape == (15, ref.shape[1], ref.shape[2])
+    np.testing.assert_array_equal(vol.read((slice(3, 9),)), ref[3:9])
+    with pytest.raises(VolumeReadError, match="colour DICOM"):
+        open_volume(get_testdata_file("SC_rgb_rle_2frame.dcm"))
