@@ -1,0 +1,85 @@
+"""The classic U-Net contracting path: double 3x3 convolutions, 2x2 max pooling between levels.
+
+References
+----------
+O. Ronneberger, P. Fischer, T. Brox, "U-Net: Convolutional Networks for Biomedical Image
+Segmentation", MICCAI 2015, arXiv:1505.04597. Padding is "same" (the original used valid
+convolutions), the common practice of today's implementations, so feature maps keep exact strides.
+"""
+from __future__ import annotations
+
+import torch
+from torch import nn
+
+from .registry import register
+from .spec import EncoderSpec, Stage
+
+__all__ = ["UNetEncoder", "DoubleConv", "make_norm"]
+
+
+def make_norm(kind: str, channels: int, groups: int = 8) -> nn.Module:
+    """``batch``, ``group`` (``groups`` groups, fewer if channels are fewer), ``instance`` or ``none``."""
+    if kind == "batch":
+        return nn.BatchNorm2d(channels)
+    if kind == "group":
+        return nn.GroupNorm(min(groups, channels), channels)
+    if kind == "instance":
+        return nn.InstanceNorm2d(channels, affine=True)
+    if kind == "none":
+        return nn.Identity()
+    raise ValueError(f"norm must be 'batch', 'group', 'instance' or 'none', got {kind!r}")
+
+
+class DoubleConv(nn.Sequential):
+    """(conv 3x3 -> norm -> ReLU) x 2."""
+
+    def __init__(self, cin: int, cout: int, norm: str = "batch") -> None:
+        bias = norm == "none"
+        super().__init__()
+        self.conv1 = nn.Conv2d(cin, cout, 3, padding=1, bias=bias)
+        self.norm1 = make_norm(norm, cout)
+        self.act1 = nn.ReLU(inplace=True)
+        self.conv2 = nn.Conv2d(cout, cout, 3, padding=1, bias=bias)
+        self.norm2 = make_norm(norm, cout)
+        self.act2 = nn.ReLU(inplace=True)
+
+
+@register("unet")
+class UNetEncoder(nn.Module):
+    """U-Net contracting path.
+
+    Parameters
+    ----------
+    in_channels : int
+        Input channels (1 for grayscale, k for 2.5-D stacks).
+    base_width : int
+        Channels of the first level; level i has ``base_width * 2**i``.
+    depth : int
+        Number of levels (the classic network has 5: 64 ... 1024 channels).
+    norm : {"batch", "group", "instance", "none"}
+
+    Examples
+    --------
+    >>> enc = UNetEncoder(in_channels=1, base_width=4, depth=3)
+    >>> [tuple(f.shape) for f in enc(torch.zeros(2, 1, 16, 16))]
+    [(2, 4, 16, 16), (2, 8, 8, 8), (2, 16, 4, 4)]
+    """
+
+    def __init__(self, in_channels: int = 1, base_width: int = 32, depth: int = 5, norm: str = "batch") -> None:
+        super().__init__()
+        if depth < 1 or base_width < 1 or in_channels < 1:
+            raise ValueError(f"unet needs depth, base_width and in_channels >= 1, got {depth}, {base_width}, {in_channels}")
+        widths = [base_width * 2**i for i in range(depth)]
+        self.levels = nn.ModuleList()
+        for i, w in enumerate(widths):
+            self.levels.append(DoubleConv(in_channels if i == 0 else widths[i - 1], w, norm))
+        self.pool = nn.MaxPool2d(2)
+        self.spec = EncoderSpec("unet", {"in_channels": in_channels, "base_width": base_width, "depth": depth, "norm": norm},
+                                tuple(Stage(w, 2**i) for i, w in enumerate(widths)))
+
+    def forward(self, x: torch.Tensor) -> list[torch.Tensor]:
+        feats = []
+        for i, level in enumerate(self.levels):
+            x = level(x if i == 0 else self.pool(x))  # (B, base*2^i, H/2^i, W/2^i)
+            feats.append(x)
+        return feats

@@ -1,0 +1,266 @@
+"""Batched augmentations for grayscale scientific patches, on tensors (CPU or GPU).
+
+Every transform is random per sample. Parameters are drawn first (:func:`draw_params`, from a
+``torch.Generator``), then applied (:func:`apply_view`), so that a view's geometry is known
+exactly (crop box, flips, quarter turns) and an image and its mask can share one draw.
+Scientific images have no "up": flips and 90-degree turns are on by default. There are no
+colour transforms.
+
+Order of application: crop (resized to the output size, bilinear), flips, quarter turns,
+affine warp, Gaussian blur, contrast/brightness, gamma, Gaussian noise, signal-dependent noise,
+cut-out.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, fields
+from typing import Any, Mapping
+
+import torch
+import torch.nn.functional as F
+
+__all__ = ["ViewSettings", "ViewParams", "draw_params", "apply_view", "gaussian_kernels"]
+
+
+@dataclass(frozen=True)
+class ViewSettings:
+    """One view pipeline (a ``[pretrain.views]`` table in a recipe).
+
+    Parameters
+    ----------
+    output_size : int, optional
+        Side of the view in pixels; default the input's.
+    crop_scale : (float, float)
+        Range of the crop's area as a fraction of the patch.
+    crop_ratio : (float, float)
+        Range of the crop's aspect ratio (width / height).
+    flip, rotate90 : bool
+        Random horizontal and vertical flips; random quarter turns (square views only).
+    affine_prob, affine_degrees, affine_scale : float, float, (float, float)
+        Probability of a small rotation (degrees, uniform in +-affine_degrees) and scaling.
+    blur_prob, blur_sigma : float, (float, float)
+        Probability and range of the Gaussian blur sigma (pixels of the view).
+    contrast_prob, contrast, brightness : float, (float, float), float
+        Contrast factor about the patch mean, and an added shift uniform in +-brightness
+        (normalized units).
+    gamma_prob, gamma : float, (float, float)
+        Gamma ``sign(x) |x|^g`` (identity at g = 1), log-uniform in the range.
+    noise_prob, noise_sigma : float, (float, float)
+        Additive Gaussian noise of standard deviation in the range (normalized units).
+    shot_prob, shot_scale : float, (float, float)
+        Signal-dependent (Poisson-like) noise of variance ``scale * max(x, 0)``.
+    cutout_prob, cutout_size : float, (float, float)
+        A rectangle of side fraction in the range set to the patch mean.
+    """
+
+    output_size: int | None = None
+    crop_scale: tuple[float, float] = (0.3, 1.0)
+    crop_ratio: tuple[float, float] = (3 / 4, 4 / 3)
+    flip: bool = True
+    rotate90: bool = True
+    affine_prob: float = 0.0
+    affine_degrees: float = 10.0
+    affine_scale: tuple[float, float] = (0.9, 1.1)
+    blur_prob: float = 0.5
+    blur_sigma: tuple[float, float] = (0.1, 1.5)
+    contrast_prob: float = 0.8
+    contrast: tuple[float, float] = (0.7, 1.3)
+    brightness: float = 0.1
+    gamma_prob: float = 0.3
+    gamma: tuple[float, float] = (0.7, 1.4)
+    noise_prob: float = 0.5
+    noise_sigma: tuple[float, float] = (0.0, 0.05)
+    shot_prob: float = 0.0
+    shot_scale: tuple[float, float] = (0.0, 0.01)
+    cutout_prob: float = 0.0
+    cutout_size: tuple[float, float] = (0.1, 0.3)
+
+    @classmethod
+    def identity(cls, **kw: Any) -> "ViewSettings":
+        """A pipeline that changes nothing (each transform can then be switched on alone)."""
+        base = dict(crop_scale=(1.0, 1.0), crop_ratio=(1.0, 1.0), flip=False, rotate90=False, affine_prob=0.0,
+                    blur_prob=0.0, contrast_prob=0.0, gamma_prob=0.0, noise_prob=0.0, shot_prob=0.0, cutout_prob=0.0)
+        base.update(kw)
+        return cls(**base)
+
+    @classmethod
+    def from_dict(cls, d: Mapping[str, Any]) -> "ViewSettings":
+        known = {f.name for f in fields(cls)}
+        unknown = sorted(set(d) - known)
+        if unknown:
+            raise ValueError(f"unknown view setting {unknown[0]!r} (known: {', '.join(sorted(known))})")
+        return cls(**{k: tuple(v) if isinstance(v, list) else v for k, v in d.items()})
+
+
+@dataclass
+class ViewParams:
+    """Per-sample parameters of one view of a batch of B patches (all tensors of length B).
+
+    ``crop`` is (B, 4): top, left, height, width as fractions of the input patch. ``flip_x`` /
+    ``flip_y`` are booleans, ``turns`` the number of counter-clockwise quarter turns (0-3), applied
+    in that order after the crop. The other fields hold the photometric parameters (0 or 1 where
+    a transform is off for a sample).
+    """
+
+    crop: torch.Tensor
+    flip_x: torch.Tensor
+    flip_y: torch.Tensor
+    turns: torch.Tensor
+    affine: torch.Tensor  # (B, 2, 3) extra warp in normalized coordinates (identity where off)
+    blur_sigma: torch.Tensor
+    contrast: torch.Tensor
+    brightness: torch.Tensor
+    gamma: torch.Tensor
+    noise_sigma: torch.Tensor
+    shot_scale: torch.Tensor
+    cutout: torch.Tensor  # (B, 4) top, left, height, width fractions; height 0 where off
+    output_size: int
+
+
+def _u(n: int, lo: float, hi: float, g: torch.Generator, device: torch.device) -> torch.Tensor:
+    return lo + (hi - lo) * torch.rand(n, generator=g, device=device)
+
+
+def _on(n: int, p: float, g: torch.Generator, device: torch.device) -> torch.Tensor:
+    return torch.rand(n, generator=g, device=device) < p
+
+
+def draw_params(batch: int, size: int, s: ViewSettings, generator: torch.Generator,
+                device: torch.device | str = "cpu") -> ViewParams:
+    """Draw the random parameters of one view for ``batch`` patches of side ``size``."""
+    dev = torch.device(device)
+    g = generator
+    # Random resized crop (as in Szegedy et al. 2015 / SimCLR): area fraction and log-uniform ratio.
+    area = _u(batch, *s.crop_scale, g, dev)
+    logr = _u(batch, math.log(s.crop_ratio[0]), math.log(s.crop_ratio[1]), g, dev)
+    ratio = torch.exp(logr)
+    w = torch.sqrt(area * ratio).clamp(max=1.0)
+    h = torch.sqrt(area / ratio).clamp(max=1.0)
+    top = torch.rand(batch, generator=g, device=dev) * (1 - h)
+    left = torch.rand(batch, generator=g, device=dev) * (1 - w)
+    false = torch.zeros(batch, dtype=torch.bool, device=dev)
+    flip_x = _on(batch, 0.5, g, dev) if s.flip else false
+    flip_y = _on(batch, 0.5, g, dev) if s.flip else false
+    turns = torch.randint(0, 4, (batch,), generator=g, device=dev) if s.rotate90 else torch.zeros(batch, dtype=torch.long, device=dev)
+    eye = torch.tensor([[1.0, 0, 0], [0, 1.0, 0]], device=dev).expand(batch, 2, 3).clone()
+    on = _on(batch, s.affine_prob, g, dev)
+    ang = torch.deg2rad(_u(batch, -s.affine_degrees, s.affine_degrees, g, dev))
+    sc = _u(batch, *s.affine_scale, g, dev)
+    rot = torch.stack([torch.stack([torch.cos(ang), -torch.sin(ang), torch.zeros_like(ang)], -1),
+                       torch.stack([torch.sin(ang), torch.cos(ang), torch.zeros_like(ang)], -1)], -2) / sc[:, None, None]
+    affine = torch.where(on[:, None, None], rot, eye)
+
+    def maybe(p: float, lo: float, hi: float, off: float) -> torch.Tensor:
+        return torch.where(_on(batch, p, g, dev), _u(batch, lo, hi, g, dev), torch.full((batch,), off, device=dev))
+
+    gamma = torch.exp(maybe(s.gamma_prob, math.log(s.gamma[0]), math.log(s.gamma[1]), 0.0))
+    cut_on = _on(batch, s.cutout_prob, g, dev)
+    ch, cw = _u(batch, *s.cutout_size, g, dev), _u(batch, *s.cutout_size, g, dev)
+    cut = torch.stack([torch.rand(batch, generator=g, device=dev) * (1 - ch), torch.rand(batch, generator=g, device=dev) * (1 - cw),
+                       torch.where(cut_on, ch, torch.zeros_like(ch)), cw], -1)
+    return ViewParams(
+        crop=torch.stack([top, left, h, w], -1), flip_x=flip_x, flip_y=flip_y, turns=turns, affine=affine,
+        blur_sigma=maybe(s.blur_prob, *s.blur_sigma, 0.0),
+        contrast=maybe(s.contrast_prob, *s.contrast, 1.0),
+        brightness=maybe(s.contrast_prob, -s.brightness, s.brightness, 0.0),
+        gamma=gamma,
+        noise_sigma=maybe(s.noise_prob, *s.noise_sigma, 0.0),
+        shot_scale=maybe(s.shot_prob, *s.shot_scale, 0.0),
+        cutout=cut, output_size=int(s.output_size or size),
+    )
+
+
+def gaussian_kernels(sigma: torch.Tensor, radius: int) -> torch.Tensor:
+    """(B, 2 radius + 1) normalized Gaussian kernels; sigma 0 gives the identity kernel."""
+    x = torch.arange(-radius, radius + 1, device=sigma.device, dtype=torch.float32)
+    s = sigma.clamp(min=1e-6)[:, None]
+    k = torch.exp(-0.5 * (x[None] / s) ** 2)
+    k = torch.where(sigma[:, None] > 0, k, (x[None] == 0).float())
+    return k / k.sum(-1, keepdim=True)
+
+
+def _blur(x: torch.Tensor, sigma: torch.Tensor) -> torch.Tensor:
+    b, c, h, w = x.shape
+    radius = int(math.ceil(3 * float(sigma.max()))) if bool((sigma > 0).any()) else 0
+    if radius == 0:
+        return x
+    radius = min(radius, h - 1, w - 1)
+    k = gaussian_kernels(sigma, radius).repeat_interleave(c, 0)  # (B*C, K)
+    y = x.reshape(1, b * c, h, w)
+    y = F.conv2d(F.pad(y, (radius, radius, 0, 0), mode="reflect"), k[:, None, None, :], groups=b * c)
+    y = F.conv2d(F.pad(y, (0, 0, radius, radius), mode="reflect"), k[:, None, :, None], groups=b * c)
+    return y.reshape(b, c, h, w)
+
+
+def _geometry(x: torch.Tensor, p: ViewParams) -> torch.Tensor:
+    b = x.shape[0]
+    top, left, h, w = p.crop.unbind(-1)
+    # affine_grid maps output coordinates in [-1, 1] to input coordinates; a crop is a scale and a shift.
+    theta = torch.zeros(b, 2, 3, device=x.device, dtype=x.dtype)
+    theta[:, 0, 0] = w
+    theta[:, 1, 1] = h
+    theta[:, 0, 2] = 2 * left + w - 1
+    theta[:, 1, 2] = 2 * top + h - 1
+    size = p.output_size
+    identity = bool(((p.crop - torch.tensor([0, 0, 1, 1], device=x.device)).abs().max() == 0)) and size == x.shape[-1] == x.shape[-2]
+    if not identity:
+        grid = F.affine_grid(theta, [b, x.shape[1], size, size], align_corners=False)
+        x = F.grid_sample(x, grid, mode="bilinear", padding_mode="reflection", align_corners=False)
+    x = torch.where(p.flip_x[:, None, None, None], x.flip(-1), x)
+    x = torch.where(p.flip_y[:, None, None, None], x.flip(-2), x)
+    if bool((p.turns > 0).any()):
+        if x.shape[-1] != x.shape[-2]:
+            raise ValueError("quarter turns need square views")
+        out = x
+        for k in (1, 2, 3):
+            out = torch.where((p.turns == k)[:, None, None, None], torch.rot90(x, k, dims=(-2, -1)), out)
+        x = out
+    eye = torch.tensor([[1.0, 0, 0], [0, 1.0, 0]], device=x.device, dtype=x.dtype)
+    if bool((p.affine != eye).any()):
+        grid = F.affine_grid(p.affine.to(x.dtype), list(x.shape), align_corners=False)
+        x = F.grid_sample(x, grid, mode="bilinear", padding_mode="reflection", align_corners=False)
+    return x
+
+
+def apply_view(x: torch.Tensor, p: ViewParams, generator: torch.Generator) -> torch.Tensor:
+    """Apply one view's parameters to a batch.
+
+    Parameters
+    ----------
+    x : (B, C, H, W) float tensor
+        Normalized patches.
+    p : ViewParams
+        From :func:`draw_params` for this batch.
+    generator : torch.Generator
+        Draws the noise fields.
+
+    Returns
+    -------
+    (B, C, S, S) tensor
+        ``S = p.output_size``.
+    """
+    x = _geometry(x, p)
+    x = _blur(x, p.blur_sigma)
+    # Each photometric step touches only the samples it is on for, so "off" is exactly the identity.
+    jitter = ((p.contrast != 1) | (p.brightness != 0))[:, None, None, None]
+    if bool(jitter.any()):
+        mean = x.mean(dim=(1, 2, 3), keepdim=True)
+        x = torch.where(jitter, (x - mean) * p.contrast[:, None, None, None] + mean + p.brightness[:, None, None, None], x)
+    g = p.gamma[:, None, None, None]
+    if bool((g != 1).any()):
+        x = torch.where(g != 1, torch.sign(x) * x.abs().pow(g), x)
+    if bool((p.noise_sigma > 0).any()):
+        noise = p.noise_sigma[:, None, None, None] * torch.randn(x.shape, generator=generator, device=x.device, dtype=x.dtype)
+        x = torch.where((p.noise_sigma > 0)[:, None, None, None], x + noise, x)
+    if bool((p.shot_scale > 0).any()):
+        var = p.shot_scale[:, None, None, None] * x.clamp(min=0)
+        noisy = x + var.sqrt() * torch.randn(x.shape, generator=generator, device=x.device, dtype=x.dtype)
+        x = torch.where((p.shot_scale > 0)[:, None, None, None], noisy, x)
+    if bool((p.cutout[:, 2] > 0).any()):
+        s = x.shape[-1]
+        yy = torch.arange(s, device=x.device)[None, :, None]
+        xx = torch.arange(s, device=x.device)[None, None, :]
+        t, l_, h, w = (p.cutout * s).unbind(-1)
+        box = (yy >= t[:, None, None]) & (yy < (t + h)[:, None, None]) & (xx >= l_[:, None, None]) & (xx < (l_ + w)[:, None, None])
+        x = torch.where(box[:, None], x.mean(dim=(1, 2, 3), keepdim=True), x)
+    return x
