@@ -1,0 +1,69 @@
+"""The interface every pretraining method implements, and the method registry."""
+from __future__ import annotations
+
+import inspect
+from typing import Any, Callable
+
+import torch
+from torch import nn
+
+__all__ = ["Method", "METHODS", "register_method", "build_method", "pooled"]
+
+METHODS: dict[str, Callable[..., "Method"]] = {}
+
+
+def register_method(name: str) -> Callable[[type], type]:
+    def deco(cls: type) -> type:
+        if name in METHODS:
+            raise ValueError(f"method {name!r} registered twice")
+        METHODS[name] = cls
+        cls.method_name = name
+        return cls
+
+    return deco
+
+
+def build_method(name: str, encoder: nn.Module, **params: Any) -> "Method":
+    """Build a registered method around an encoder (``simclr``, ``moco_v2``, ``byol``)."""
+    if name not in METHODS:
+        raise ValueError(f"unknown method {name!r}; known: {', '.join(sorted(METHODS))}")
+    cls = METHODS[name]
+    bad = sorted(set(params) - set(inspect.signature(cls.__init__).parameters) - {"self"})
+    if bad:
+        raise ValueError(f"method {name!r} takes no parameter {bad[0]!r}")
+    return cls(encoder, **params)
+
+
+def pooled(encoder: nn.Module, x: torch.Tensor) -> torch.Tensor:
+    """Global average pool of the encoder's deepest feature map: (B, C, H, W) -> (B, C)."""
+    return encoder(x)[-1].mean(dim=(-2, -1))
+
+
+class Method(nn.Module):
+    """A self-supervised objective on two views of a batch.
+
+    Subclasses set ``self.encoder`` (the network that is exported) and implement :meth:`loss`.
+    Momentum methods override :meth:`after_step`; :meth:`exported_encoder` says which encoder
+    the export takes (the momentum one, where there is one and it is asked for).
+    """
+
+    method_name = "base"
+
+    def __init__(self, encoder: nn.Module) -> None:
+        super().__init__()
+        self.encoder = encoder
+
+    def loss(self, view1: torch.Tensor, view2: torch.Tensor) -> tuple[torch.Tensor, dict[str, torch.Tensor]]:
+        """Return the loss and ``{"embedding": (B, D)}``, the pooled features of ``view1``
+        (what collapse and kNN monitors watch)."""
+        raise NotImplementedError
+
+    def after_step(self, step: int, total_steps: int) -> None:
+        """Called after every optimizer step (momentum updates)."""
+
+    def exported_encoder(self, momentum: bool = False) -> nn.Module:
+        return self.encoder
+
+    @torch.no_grad()
+    def embed(self, x: torch.Tensor) -> torch.Tensor:
+        return pooled(self.encoder, x)

@@ -1,0 +1,58 @@
+"""MoCo v2: a momentum key encoder and a queue of negatives, cosine momentum schedule.
+
+References
+----------
+K. He, H. Fan, Y. Wu, S. Xie, R. Girshick, "Momentum Contrast for Unsupervised Visual
+Representation Learning", CVPR 2020, arXiv:1911.05722; X. Chen, H. Fan, R. Girshick, K. He,
+"Improved Baselines with Momentum Contrastive Learning", arXiv:2003.04297 (v2: MLP head,
+stronger augmentation). Loss (NT-Xent with a memory bank), head and momentum utilities are lightly's.
+"""
+from __future__ import annotations
+
+import copy
+
+import torch
+from lightly.loss import NTXentLoss
+from lightly.models.modules.heads import MoCoProjectionHead
+from lightly.models.utils import deactivate_requires_grad, update_momentum
+from lightly.utils.scheduler import cosine_schedule
+from torch import nn
+
+from .base import Method, pooled, register_method
+
+
+@register_method("moco_v2")
+class MoCoV2(Method):
+    """Parameters: head sizes, ``temperature``, ``queue_size`` (negatives kept), and the momentum
+    going from ``momentum`` to 1 on a cosine schedule over training."""
+
+    def __init__(self, encoder: nn.Module, hidden_dim: int = 512, output_dim: int = 128, temperature: float = 0.2,
+                 queue_size: int = 4096, momentum: float = 0.99) -> None:
+        super().__init__(encoder)
+        dim = encoder.spec.out_channels
+        self.head = MoCoProjectionHead(dim, hidden_dim, output_dim)
+        self.encoder_momentum = copy.deepcopy(encoder)
+        self.head_momentum = copy.deepcopy(self.head)
+        deactivate_requires_grad(self.encoder_momentum)
+        deactivate_requires_grad(self.head_momentum)
+        self.base_momentum = momentum
+        self.criterion = NTXentLoss(temperature=temperature, memory_bank_size=(queue_size, output_dim), gather_distributed=True)
+
+    def loss(self, view1: torch.Tensor, view2: torch.Tensor) -> tuple[torch.Tensor, dict[str, torch.Tensor]]:
+        f1 = pooled(self.encoder, view1)
+        q = self.head(f1)  # queries (B, D)
+        with torch.no_grad():
+            k = self.head_momentum(pooled(self.encoder_momentum, view2))  # keys (B, D)
+        return self.criterion(q, k), {"embedding": f1.detach()}
+
+    def momentum_at(self, step: int, total_steps: int) -> float:
+        return float(cosine_schedule(step, max(total_steps, 1), self.base_momentum, 1.0))
+
+    @torch.no_grad()
+    def after_step(self, step: int, total_steps: int) -> None:
+        m = self.momentum_at(step, total_steps)
+        update_momentum(self.encoder, self.encoder_momentum, m)
+        update_momentum(self.head, self.head_momentum, m)
+
+    def exported_encoder(self, momentum: bool = False) -> nn.Module:
+        return self.encoder_momentum if momentum else self.encoder
