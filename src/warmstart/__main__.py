@@ -1,4 +1,4 @@
 """``python -m warmstart`` runs the command line."""
-from .cli import main
+from warmstart.cli import main  # absolute: DDP launchers rerun this file as a script
 
 raise SystemExit(main())

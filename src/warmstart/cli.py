@@ -73,6 +73,32 @@ def build_parser() -> argparse.ArgumentParser:
     show.add_argument("--no-report", action="store_true", help="only print, do not write report/")
     show.add_argument("--json", action="store_true")
 
+    pre = sub.add_parser("pretrain", help="pretrain an encoder on a corpus (self-supervised)",
+                         description="Train an encoder with SimCLR, MoCo v2 or BYOL on the patches of CORPUS; the "
+                                     "run folder RUN gets the resolved recipe, checkpoints, history.csv and summary.json.")
+    pre.add_argument("corpus", metavar="CORPUS")
+    pre.add_argument("-o", "--output", required=True, metavar="RUN", help="run folder")
+    g = pre.add_argument_group("recipe")
+    g.add_argument("--recipe", metavar="FILE", help="recipe TOML file or shipped recipe name")
+    g.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE",
+                   help="override any recipe key, e.g. --set pretrain.lr=3e-4 (repeatable)")
+    g = pre.add_argument_group("common settings (shortcuts for --set)")
+    g.add_argument("--method", choices=["simclr", "moco_v2", "byol"])
+    g.add_argument("--encoder", metavar="NAME", help="resnet_narrow, resnet18, resnet34, resnet50, unet")
+    g.add_argument("--epochs", type=int)
+    g.add_argument("--max-steps", type=int)
+    g.add_argument("--batch-size", type=int)
+    g.add_argument("--lr", type=float)
+    g.add_argument("--seed", type=int)
+    g.add_argument("--devices", help="Lightning devices: auto, N, or a list")
+    g.add_argument("--strategy", help="Lightning strategy: auto, ddp, ...")
+    g.add_argument("--accelerator", help="cpu, gpu or auto")
+    g.add_argument("--precision", choices=["auto", "32-true", "16-mixed", "bf16-mixed"])
+    g.add_argument("--num-workers", type=int, metavar="N", help="DataLoader workers per device")
+    g.add_argument("--deterministic", action="store_true", default=None, help="deterministic algorithms (identical reruns)")
+    pre.add_argument("--resume", action="store_true", help="continue the run in RUN from its last checkpoint")
+    pre.add_argument("--json", action="store_true")
+
     demo = sub.add_parser("demo", help="generate a demo archive and run the pipeline on it",
                           description="Write a ceramics lab's archive of sintered-filter scans (mixed formats, bit depths "
                                       "and scanners), then scan it and build a corpus. Rerunning with --out reuses "
@@ -222,6 +248,34 @@ def cmd_corpus_merge(args: argparse.Namespace) -> int:
     return 0
 
 
+_PRETRAIN_SHORTCUTS = {
+    "method": "method", "encoder": "encoder", "epochs": "epochs", "max_steps": "max_steps", "batch_size": "batch_size",
+    "lr": "lr", "seed": "seed", "devices": "devices", "strategy": "strategy", "accelerator": "accelerator",
+    "precision": "precision", "num_workers": "num_workers", "deterministic": "deterministic",
+}
+
+
+def cmd_pretrain(args: argparse.Namespace) -> int:
+    from .recipe import load_recipe
+
+    overrides = list(args.overrides)
+    for attr, key in _PRETRAIN_SHORTCUTS.items():
+        value = getattr(args, attr, None)
+        if value is not None:
+            overrides.append(f"pretrain.{key}={json.dumps(value)}")
+    recipe = load_recipe(args.recipe, overrides, default_section="pretrain")
+    from .pretrain.loop import pretrain  # imports torch: only this command pays for it
+
+    result = pretrain(args.corpus, args.output, recipe.pretrain, resume=args.resume, progress=not args.quiet)
+    if args.json:
+        _print_json({"path": str(result.path), **result.summary})
+    else:
+        loss = "n/a" if result.final_loss is None else f"{result.final_loss:.4f}"
+        print(f"{result.path}: {result.steps} steps of {recipe.pretrain.method} on {recipe.pretrain.encoder}, "
+              f"final loss {loss}, {result.summary.get('seconds')} s")
+    return 0
+
+
 def cmd_demo(args: argparse.Namespace) -> int:
     from .demo.run import run_demo
 
@@ -241,8 +295,11 @@ def main(argv: Sequence[str] | None = None) -> int:
 
     # tifffile logs its own complaint before raising; our error message already names the file.
     logging.getLogger("tifffile").setLevel(logging.CRITICAL)
+    if args.quiet:  # Lightning's start-up chatter (accelerators found, tips)
+        for name in ("pytorch_lightning", "lightning_fabric", "lightning.pytorch"):
+            logging.getLogger(name).setLevel(logging.WARNING)
 
-    handlers = {"scan": cmd_scan, "demo": cmd_demo, ("corpus", "build"): cmd_corpus_build, ("corpus", "show"): cmd_corpus_show,
+    handlers = {"scan": cmd_scan, "demo": cmd_demo, "pretrain": cmd_pretrain, ("corpus", "build"): cmd_corpus_build, ("corpus", "show"): cmd_corpus_show,
                 ("corpus", "merge"): cmd_corpus_merge}
     key = (args.command, args.corpus_command) if args.command == "corpus" else args.command
     try:

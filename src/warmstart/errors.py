@@ -14,6 +14,7 @@ __all__ = [
     "IntensityError",
     "RecipeError",
     "CorpusError",
+    "PretrainError",
 ]
 
 
@@ -43,3 +44,7 @@ class RecipeError(WarmstartError, ValueError):
 
 class CorpusError(WarmstartError, ValueError):
     """A corpus store is missing, inconsistent, or cannot be built or merged as asked."""
+
+
+class PretrainError(WarmstartError, RuntimeError):
+    """Pretraining cannot go on (non-finite loss, missing checkpoint to resume, ...)."""

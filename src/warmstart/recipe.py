@@ -1,6 +1,6 @@
 """Recipes: TOML files that say how each stage runs.
 
-A recipe has one table per stage (``[corpus]`` now) and an optional ``description``. Unknown
+A recipe has one table per stage (``[corpus]``, ``[pretrain]``) and an optional ``description``. Unknown
 keys and wrong types are errors naming the key and the file. Any key can be overridden with
 ``key=value`` strings (``corpus.sampling.patch_size=64``; the stage prefix may be left out), the
 value read as TOML (``64``, ``"ZYX"`` or ``ZYX``, ``[0.5, 99.5]``, ``true``).
@@ -21,7 +21,15 @@ from .errors import RecipeError
 __all__ = ["Recipe", "load_recipe", "apply_overrides", "recipe_path", "RECIPE_DIR"]
 
 RECIPE_DIR = Path(__file__).parent / "recipes"
-_SECTIONS = {"corpus": CorpusSettings}
+def _pretrain_settings() -> type:
+    # PretrainSettings lives in warmstart.pretrain, whose package imports torch when used; its
+    # settings module itself does not, so recipes stay torch-free.
+    from .pretrain.settings import PretrainSettings
+
+    return PretrainSettings
+
+
+_SECTIONS = {"corpus": CorpusSettings, "pretrain": None}
 _TOP_KEYS = {"description"}
 
 
@@ -38,11 +46,12 @@ class Recipe:
     """
 
     corpus: CorpusSettings = field(default_factory=CorpusSettings)
+    pretrain: Any = None
     description: str = ""
     source: str = "defaults"
 
     def to_dict(self) -> dict[str, Any]:
-        return {"description": self.description, "corpus": self.corpus.to_dict()}
+        return {"description": self.description, "corpus": self.corpus.to_dict(), "pretrain": self.pretrain.to_dict()}
 
 
 def recipe_path(name_or_path: str | os.PathLike[str]) -> Path:
@@ -89,7 +98,8 @@ def _deep_copy(d: dict[str, Any]) -> dict[str, Any]:
     return {k: _deep_copy(v) if isinstance(v, dict) else v for k, v in d.items()}
 
 
-def load_recipe(path: str | os.PathLike[str] | None = None, overrides: Sequence[str] = ()) -> Recipe:
+def load_recipe(path: str | os.PathLike[str] | None = None, overrides: Sequence[str] = (),
+                default_section: str = "corpus") -> Recipe:
     """Read a recipe file (or the defaults), apply overrides, and validate everything.
 
     Parameters
@@ -113,12 +123,13 @@ def load_recipe(path: str | os.PathLike[str] | None = None, overrides: Sequence[
             data = tomllib.loads(p.read_text())
         except tomllib.TOMLDecodeError as err:
             raise RecipeError(f"{p}: not valid TOML ({err})") from err
-    data = apply_overrides(data, overrides)
+    data = apply_overrides(data, overrides, default_section)
     unknown = sorted(set(data) - set(_SECTIONS) - _TOP_KEYS)
     if unknown:
         raise RecipeError(f"{where}: unknown section or key {unknown[0]!r} (known: {', '.join(sorted(set(_SECTIONS) | _TOP_KEYS))})")
     try:
         corpus = CorpusSettings.from_dict(data.get("corpus", {}), "corpus")
+        pretrain = _pretrain_settings().from_dict(data.get("pretrain", {}), "pretrain")
     except RecipeError as err:
         raise RecipeError(f"{where}: {err}") from err
-    return Recipe(corpus=corpus, description=str(data.get("description", "")), source=where)
+    return Recipe(corpus=corpus, pretrain=pretrain, description=str(data.get("description", "")), source=where)

@@ -1,4 +1,5 @@
-"""Pretraining: views (augment), methods (SimCLR, MoCo v2, BYOL ...), data and the training loop.
+"""Pretraining: views (augment), methods (SimCLR, MoCo v2, BYOL), data, monitors and the loop.
 
-Importing this package imports torch.
+The package itself and its ``settings`` module import no torch (recipes read them); ``augment``,
+``methods``, ``data``, ``monitors`` and ``loop`` do.
 """

@@ -79,12 +79,15 @@ class CorpusBatches(IterableDataset):
     drop_last : bool
     rank, world_size : int, optional
         Distributed rank; default from ``torch.distributed`` when initialized.
+    num_workers : int
+        The DataLoader's workers (0 or more): ``len()`` counts the batches the epoch really has,
+        since each worker drops its own partial batch.
     """
 
     def __init__(self, corpus: str | os.PathLike[str], batch_size: int, seed: int = 0, in_memory: bool | str = "auto",
                  source_weights: Mapping[int, float] | None = None, n_per_epoch: int | None = None, mix_chunks: int = 4,
                  drop_last: bool = True, memory_limit_gb: float = 4.0, rank: int | None = None,
-                 world_size: int | None = None) -> None:
+                 world_size: int | None = None, num_workers: int = 0) -> None:
         super().__init__()
         store = open_corpus(corpus)
         self.path = str(store.path)
@@ -98,7 +101,9 @@ class CorpusBatches(IterableDataset):
         self.n_per_epoch = n_per_epoch
         self.mix_chunks = max(1, int(mix_chunks))
         self.drop_last = drop_last
+        self.num_workers = int(num_workers)
         self.epoch = 0
+        self.start_batch = 0  # batches of this epoch already consumed (set when a run resumes)
         self._rank, self._world = rank, world_size
         nbytes = int(np.prod(self.shape)) * 2  # kept as the stored 16-bit codes
         self.in_memory = nbytes < memory_limit_gb * 1e9 if in_memory == "auto" else bool(in_memory)
@@ -109,10 +114,13 @@ class CorpusBatches(IterableDataset):
         self.epoch = int(epoch)
 
     def __len__(self) -> int:
+        """Batches per epoch on this rank (with ``drop_last``: exact)."""
         n = self.n_per_epoch or len(self.source_of)
-        world = self._world_size()
-        per_rank = n // world if self.drop_last else -(-n // world)
-        return per_rank // self.batch_size if self.drop_last else -(-per_rank // self.batch_size)
+        workers = max(1, self.num_workers)
+        per_consumer = n // (self._world_size() * workers)
+        if self.drop_last:
+            return workers * (per_consumer // self.batch_size)
+        return workers * -(-per_consumer // self.batch_size)
 
     def _world_size(self) -> int:
         if self._world is not None:
@@ -141,7 +149,7 @@ class CorpusBatches(IterableDataset):
             return self._codes[lo:hi]
         return np.asarray(self._array()[lo:hi])
 
-    def chunk_plan(self) -> list[tuple[int, np.ndarray]]:
+    def chunk_plan(self, worker: int | None = None, workers: int | None = None) -> list[tuple[int, np.ndarray]]:
         """This rank's and worker's (chunk, patch indices) list for the current epoch.
 
         The epoch's indices are ordered by a random permutation of the chunks (keeping their
@@ -156,9 +164,10 @@ class CorpusBatches(IterableDataset):
         chunks = idx // self.chunk
         rank_of_chunk = rng.permutation(int(chunks.max()) + 1)
         idx = idx[np.argsort(rank_of_chunk[chunks], kind="stable")]
-        info = get_worker_info()
-        workers = info.num_workers if info is not None else 1
-        consumer = self._rank_id() * workers + (info.id if info is not None else 0)
+        if worker is None or workers is None:
+            info = get_worker_info()
+            worker, workers = (info.id, info.num_workers) if info is not None else (0, 1)
+        consumer = self._rank_id() * workers + worker
         per = len(idx) // (self._world_size() * workers)
         mine = idx[consumer * per:(consumer + 1) * per]
         c = mine // self.chunk
@@ -166,8 +175,22 @@ class CorpusBatches(IterableDataset):
         return [(int(g[0] // self.chunk), g) for g in np.split(mine, cuts) if len(g)]
 
     def __iter__(self) -> Iterator[torch.Tensor]:
-        rng = np.random.default_rng([self.seed, self.epoch, self._rank_id(), 1 + (get_worker_info().id if get_worker_info() else 0)])
-        plan = self.chunk_plan()
+        info = get_worker_info()
+        wid, workers = (info.id, info.num_workers) if info is not None else (0, 1)
+        # A DataLoader takes batch t from worker t mod W, starting with worker 0 on every new
+        # iterator. Overall batch b belongs to the plan of worker b mod W, as its (b div W)-th
+        # batch. When an epoch resumes after start_batch batches, worker w must therefore make
+        # batches start_batch + w + kW: the plan of worker (w + start) mod W, minus its first
+        # (w + start) div W batches.
+        plan_of = (wid + self.start_batch) % workers
+        skip = (wid + self.start_batch) // workers
+        rng = np.random.default_rng([self.seed, self.epoch, self._rank_id(), 1 + plan_of])
+        for i, batch in enumerate(self._batches(rng, plan_of, workers)):
+            if i >= skip:
+                yield batch
+
+    def _batches(self, rng: np.random.Generator, worker: int, workers: int) -> Iterator[torch.Tensor]:
+        plan = self.chunk_plan(worker, workers)
         carry = np.empty((0,) + self.shape[1:], dtype=np.float32)
         for g in range(0, len(plan), self.mix_chunks):
             parts = []

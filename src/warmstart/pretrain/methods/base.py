@@ -54,12 +54,19 @@ class Method(nn.Module):
         self.encoder = encoder
 
     def loss(self, view1: torch.Tensor, view2: torch.Tensor) -> tuple[torch.Tensor, dict[str, torch.Tensor]]:
-        """Return the loss and ``{"embedding": (B, D)}``, the pooled features of ``view1``
-        (what collapse and kNN monitors watch)."""
+        """Return the loss and ``{"embedding": (B, D), "embedding2": (B, D)}``: the pooled
+        features of the two views (what the collapse and alignment monitors watch)."""
         raise NotImplementedError
 
     def after_step(self, step: int, total_steps: int) -> None:
         """Called after every optimizer step (momentum updates)."""
+
+    def extra_state(self) -> dict[str, torch.Tensor]:
+        """State outside the state dict that a resumed run needs (a queue of negatives, say)."""
+        return {}
+
+    def load_extra_state(self, state: dict[str, torch.Tensor]) -> None:
+        """Restore what :meth:`extra_state` returned."""
 
     def exported_encoder(self, momentum: bool = False) -> nn.Module:
         return self.encoder

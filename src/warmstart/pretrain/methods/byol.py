@@ -42,7 +42,7 @@ class BYOL(Method):
         with torch.no_grad():
             t1 = self.head_momentum(pooled(self.encoder_momentum, view1))
             t2 = self.head_momentum(pooled(self.encoder_momentum, view2))
-        return 0.5 * (self.criterion(p1, t2) + self.criterion(p2, t1)), {"embedding": f1.detach()}
+        return 0.5 * (self.criterion(p1, t2) + self.criterion(p2, t1)), {"embedding": f1.detach(), "embedding2": f2.detach()}
 
     @torch.no_grad()
     def after_step(self, step: int, total_steps: int) -> None:

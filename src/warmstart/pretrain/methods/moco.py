@@ -42,8 +42,9 @@ class MoCoV2(Method):
         f1 = pooled(self.encoder, view1)
         q = self.head(f1)  # queries (B, D)
         with torch.no_grad():
-            k = self.head_momentum(pooled(self.encoder_momentum, view2))  # keys (B, D)
-        return self.criterion(q, k), {"embedding": f1.detach()}
+            f2 = pooled(self.encoder_momentum, view2)
+            k = self.head_momentum(f2)  # keys (B, D)
+        return self.criterion(q, k), {"embedding": f1.detach(), "embedding2": f2}
 
     def momentum_at(self, step: int, total_steps: int) -> float:
         return float(cosine_schedule(step, max(total_steps, 1), self.base_momentum, 1.0))
@@ -53,6 +54,17 @@ class MoCoV2(Method):
         m = self.momentum_at(step, total_steps)
         update_momentum(self.encoder, self.encoder_momentum, m)
         update_momentum(self.head, self.head_momentum, m)
+
+    def extra_state(self) -> dict[str, torch.Tensor]:
+        # lightly keeps the queue in non-persistent buffers; a resumed run needs it back.
+        bank = self.criterion.memory_bank
+        return {"queue": bank.bank.detach().clone(), "queue_ptr": bank.bank_ptr.detach().clone()}
+
+    def load_extra_state(self, state: dict[str, torch.Tensor]) -> None:
+        if "queue" in state:
+            bank = self.criterion.memory_bank
+            bank.bank.copy_(state["queue"].to(bank.bank.device))
+            bank.bank_ptr.copy_(state["queue_ptr"].to(bank.bank_ptr.device))
 
     def exported_encoder(self, momentum: bool = False) -> nn.Module:
         return self.encoder_momentum if momentum else self.encoder

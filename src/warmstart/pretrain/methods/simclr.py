@@ -28,4 +28,4 @@ class SimCLR(Method):
     def loss(self, view1: torch.Tensor, view2: torch.Tensor) -> tuple[torch.Tensor, dict[str, torch.Tensor]]:
         f1, f2 = pooled(self.encoder, view1), pooled(self.encoder, view2)  # (B, C)
         z1, z2 = self.head(f1), self.head(f2)  # (B, D)
-        return self.criterion(z1, z2), {"embedding": f1.detach()}
+        return self.criterion(z1, z2), {"embedding": f1.detach(), "embedding2": f2.detach()}

@@ -1,0 +1,275 @@
+"""The pretraining loop, on PyTorch Lightning: CPU, one GPU with mixed precision, or DDP.
+
+A run folder holds ``recipe.json`` (the resolved settings), ``checkpoints/`` (every
+``checkpoint_every`` steps and ``last.ckpt``), ``history.csv`` (loss, learning rate and monitors
+per step) and ``summary.json``. The two views of step ``s`` on rank ``r`` come from a generator
+seeded with (seed, s, r) and the data position is part of the step count, so a resumed run sees
+exactly the batches and views the uninterrupted run would have seen.
+"""
+from __future__ import annotations
+
+import json
+import math
+import os
+import time
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pytorch_lightning as pl
+import torch
+
+from .. import __version__
+from ..errors import PretrainError
+from ..encoders import build_encoder
+from .augment import ViewSettings, apply_view, draw_params
+from .data import CorpusBatches
+from .methods import build_method
+from .monitors import alignment, embedding_spread, uniformity
+from .settings import PretrainSettings
+
+__all__ = ["pretrain", "PretrainResult", "PretrainModule"]
+
+
+def _step_seed(seed: int, step: int, rank: int) -> int:
+    return int(np.random.SeedSequence([seed, step, rank]).generate_state(1, dtype=np.uint64)[0] % (2**63))
+
+
+class PretrainModule(pl.LightningModule):
+    """A method around an encoder, trained on two batched views of each corpus batch."""
+
+    def __init__(self, settings: dict[str, Any], in_channels: int, total_steps: int) -> None:
+        super().__init__()
+        self.save_hyperparameters()
+        s = PretrainSettings.from_dict(settings)
+        self.s = s
+        enc = build_encoder(s.encoder, **{"in_channels": in_channels, **s.encoder_params})
+        self.method = build_method(s.method, enc, **s.method_params)
+        self.view1 = ViewSettings.from_dict(s.view1)
+        self.view2 = ViewSettings.from_dict(s.view2) if s.view2 is not None else self.view1
+        self.total_steps = int(total_steps)
+        self.spreads: list[float] = []
+
+    def training_step(self, batch: torch.Tensor, batch_idx: int) -> torch.Tensor:
+        step = int(self.global_step)
+        g = torch.Generator(device=batch.device)
+        g.manual_seed(_step_seed(self.s.seed, step, self.global_rank))
+        b, size = batch.shape[0], batch.shape[-1]  # (B, C, P, P)
+        x1 = apply_view(batch, draw_params(b, size, self.view1, g, batch.device), g)
+        x2 = apply_view(batch, draw_params(b, size, self.view2, g, batch.device), g)
+        loss, out = self.method.loss(x1, x2)
+        if not bool(torch.isfinite(loss)):
+            raise PretrainError(
+                f"loss is {float(loss)} at step {step}: training stopped; the last good checkpoint is kept "
+                "(lower pretrain.lr, raise grad_clip, or check the corpus for extreme values)"
+            )
+        spread = embedding_spread(out["embedding"])
+        self.spreads.append(spread)
+        self.log_dict({"loss": loss.detach(), "spread": spread, "alignment": alignment(out["embedding"], out["embedding2"]),
+                       "uniformity": uniformity(out["embedding"]),
+                       "lr": self.trainer.optimizers[0].param_groups[0]["lr"]},
+                      on_step=True, on_epoch=False, prog_bar=False, batch_size=b)
+        self.log("loss_bar", loss.detach(), prog_bar=True, logger=False, batch_size=b)
+        return loss
+
+    def on_save_checkpoint(self, checkpoint: dict[str, Any]) -> None:
+        checkpoint["method_state"] = self.method.extra_state()
+
+    def on_load_checkpoint(self, checkpoint: dict[str, Any]) -> None:
+        self.method.load_extra_state(checkpoint.get("method_state", {}))
+
+    def optimizer_step(self, *args: Any, **kwargs: Any) -> None:
+        super().optimizer_step(*args, **kwargs)
+        # Momentum updates here, not in on_train_batch_end: Lightning runs the checkpoint
+        # callback's batch-end hook first, so a checkpoint would miss this step's update.
+        self.method.after_step(int(self.global_step), self.total_steps)
+
+    def on_train_end(self) -> None:
+        """Every rank reports a checksum of its weights: DDP keeps them identical, and a run that
+        drifted apart (a broken reduction, a rank-dependent branch) is caught here."""
+        total = torch.stack([p.detach().double().sum() for p in self.method.encoder.parameters()]).sum()
+        gathered = self.all_gather(total)
+        self.rank_checksums = [float(x) for x in gathered.reshape(-1)]
+        if len(set(self.rank_checksums)) > 1:
+            warnings.warn(f"ranks ended with different weights (checksums {self.rank_checksums})", stacklevel=2)
+
+    def on_train_epoch_end(self) -> None:
+        if self.spreads and float(np.mean(self.spreads)) < self.s.collapse_threshold:
+            warnings.warn(
+                f"representation collapse: embedding spread {np.mean(self.spreads):.3f} (std of normalized "
+                f"embeddings x sqrt(D)) is below {self.s.collapse_threshold} in epoch {self.current_epoch}; "
+                "the encoder maps different patches to nearly the same embedding", stacklevel=2)
+        self.spreads = []
+
+    def configure_optimizers(self) -> Any:
+        params = [p for p in self.parameters() if p.requires_grad]
+        opt = torch.optim.AdamW(params, lr=self.s.lr, weight_decay=self.s.weight_decay)
+        warm = max(1, int(self.s.warmup_fraction * self.total_steps))
+
+        def factor(step: int) -> float:  # linear warm-up, then cosine to 0
+            if step < warm:
+                return (step + 1) / warm
+            t = min(1.0, (step - warm) / max(1, self.total_steps - warm))
+            return 0.5 * (1 + math.cos(math.pi * t))
+
+        sched = torch.optim.lr_scheduler.LambdaLR(opt, factor)
+        return {"optimizer": opt, "lr_scheduler": {"scheduler": sched, "interval": "step"}}
+
+
+class _EpochPosition(pl.Callback):
+    """Tell the dataset its epoch and, after a resume, how many of the epoch's batches are done."""
+
+    def __init__(self, ds: CorpusBatches, steps_per_epoch: int) -> None:
+        self.ds, self.steps_per_epoch = ds, steps_per_epoch
+
+    def on_train_epoch_start(self, trainer: pl.Trainer, module: pl.LightningModule) -> None:
+        self.ds.set_epoch(trainer.current_epoch)
+        self.ds.start_batch = max(0, trainer.global_step - trainer.current_epoch * self.steps_per_epoch)
+
+
+@dataclass
+class PretrainResult:
+    """What a run produced: the run folder, steps done, final loss, and the summary dict."""
+
+    path: Path
+    steps: int
+    final_loss: float | None
+    summary: dict[str, Any] = field(default_factory=dict)
+
+
+def _precision(s: PretrainSettings) -> str:
+    if s.precision != "auto":
+        return "32-true" if s.precision == "32" else s.precision
+    if torch.cuda.is_available() and s.accelerator in ("auto", "gpu", "cuda") and torch.cuda.is_bf16_supported():
+        return "bf16-mixed"
+    return "32-true"
+
+
+def pretrain(corpus: str | os.PathLike[str], out: str | os.PathLike[str], settings: PretrainSettings | None = None, *,
+             resume: bool = False, progress: bool = True) -> PretrainResult:
+    """Pretrain an encoder on a corpus store.
+
+    Parameters
+    ----------
+    corpus : path
+        A finished corpus store.
+    out : path
+        Run folder (created). With ``resume``, continues from its ``checkpoints/last.ckpt``.
+    settings : PretrainSettings, optional
+    resume : bool
+    progress : bool
+
+    Returns
+    -------
+    PretrainResult
+
+    Raises
+    ------
+    PretrainError
+        Non-finite loss (the last good checkpoint is kept), or nothing to resume.
+    """
+    from pytorch_lightning.callbacks import ModelCheckpoint
+    from pytorch_lightning.loggers import CSVLogger
+
+    from ..corpus.store import open_corpus
+
+    s = settings or PretrainSettings()
+    out = Path(out)
+    ckpt_dir = out / "checkpoints"
+    last = ckpt_dir / "last.ckpt"
+    if resume and not last.exists():
+        raise PretrainError(f"{out}: nothing to resume (no checkpoints/last.ckpt)")
+    if not resume and last.exists():
+        raise PretrainError(f"{out}: holds a run already; pass --resume to continue it or choose a new folder")
+    out.mkdir(parents=True, exist_ok=True)
+    first_process = os.environ.get("LOCAL_RANK", "0") == "0" and os.environ.get("NODE_RANK", "0") == "0"
+    if resume and first_process and (out / "metrics.csv").exists():
+        # Lightning's CSV logger starts metrics.csv afresh; keep the interrupted part's rows.
+        n = len(list(out.glob("metrics-part*.csv")))
+        (out / "metrics.csv").rename(out / f"metrics-part{n:03d}.csv")
+    store = open_corpus(corpus)
+    names = {e["name"]: e["position"] for e in store.manifest["sources"]}
+    unknown = sorted(set(s.source_weights) - set(names))
+    if unknown:
+        raise PretrainError(f"pretrain.source_weights names {unknown[0]!r}, which is not a source of {corpus}")
+    weights = {names[k]: float(v) for k, v in s.source_weights.items()} or None
+    pl.seed_everything(s.seed, workers=True, verbose=False)
+    ds = CorpusBatches(corpus, s.batch_size, seed=s.seed, in_memory=s.in_memory if s.in_memory == "auto" else bool(s.in_memory),
+                       source_weights=weights, num_workers=s.num_workers)
+    ckpt = ModelCheckpoint(dirpath=ckpt_dir, filename="step-{step}", every_n_train_steps=s.checkpoint_every,
+                           monitor="step", mode="max", save_top_k=3, save_last=True, auto_insert_metric_name=False)
+    position = _EpochPosition(ds, 0)
+    trainer = pl.Trainer(
+        max_steps=-1, accelerator=s.accelerator, devices=s.devices, strategy=s.strategy,
+        num_nodes=s.num_nodes, precision=_precision(s), gradient_clip_val=s.grad_clip or None,
+        deterministic=s.deterministic, logger=CSVLogger(out, name="", version="", flush_logs_every_n_steps=10),
+        callbacks=[ckpt, position], enable_progress_bar=progress,
+        enable_model_summary=False, log_every_n_steps=1, default_root_dir=out,
+        use_distributed_sampler=False,
+    )
+    # The epoch length depends on the number of ranks, which the trainer knows before any
+    # process group exists; the step limits are set once it is known.
+    ds._world = trainer.world_size
+    steps_per_epoch = len(ds)
+    if steps_per_epoch < 1:
+        raise PretrainError(f"{corpus}: {len(ds.source_of)} patches make no batch of {s.batch_size} per rank; "
+                            "lower pretrain.batch_size")
+    total = s.max_steps if s.max_steps is not None else s.epochs * steps_per_epoch
+    trainer.fit_loop.epoch_loop.max_steps = total
+    trainer.fit_loop.max_epochs = math.ceil(total / steps_per_epoch)
+    position.steps_per_epoch = steps_per_epoch
+    channels = int(store.patches.shape[1])
+    (out / "recipe.json").write_text(json.dumps({"pretrain": s.to_dict(), "corpus": str(store.path)}, indent=1))
+    module = PretrainModule(s.to_dict(), channels, total)
+    if resume:
+        # Lightning makes the data iterator of the resumed epoch before any epoch hook runs, so
+        # the dataset learns its position from the checkpoint here.
+        done = int(torch.load(last, map_location="cpu", weights_only=True)["global_step"])
+        ds.set_epoch(done // steps_per_epoch)
+        ds.start_batch = done % steps_per_epoch
+    loader = torch.utils.data.DataLoader(ds, batch_size=None, num_workers=s.num_workers,
+                                         persistent_workers=False, pin_memory=torch.cuda.is_available())
+    t0 = time.perf_counter()
+    with warnings.catch_warnings():
+        warnings.filterwarnings("ignore", message=".*does not have many workers.*")
+        warnings.filterwarnings("ignore", message=".*IterableDataset.*")
+        warnings.filterwarnings("ignore", message=".*Experiment logs directory.*")
+        warnings.filterwarnings("ignore", message=".*Checkpoint directory .* exists and is not empty.*")
+        warnings.filterwarnings("ignore", message=".*resuming from a checkpoint that ended before the epoch ended.*")
+        trainer.fit(module, loader, ckpt_path=str(last) if resume else None)
+    seconds = time.perf_counter() - t0
+    trainer.save_checkpoint(last)  # the end state, whatever the step count (all ranks call, rank 0 writes)
+    history = _write_history(out)
+    summary = {
+        "warmstart_version": __version__, "torch_version": torch.__version__, "lightning_version": pl.__version__,
+        "method": s.method, "encoder": module.method.encoder.spec.to_dict(), "steps": int(trainer.global_step),
+        "epochs": int(trainer.current_epoch), "final_loss": history[-1]["loss"] if history else None,
+        "final_spread": history[-1]["spread"] if history else None, "seconds": round(seconds, 1),
+        "corpus": str(store.path), "patches": len(store), "resumed": resume,
+        "rank_checksums": getattr(module, "rank_checksums", None),
+    }
+    if trainer.is_global_zero:
+        (out / "summary.json").write_text(json.dumps(summary, indent=1))
+    return PretrainResult(out, int(trainer.global_step), summary["final_loss"], summary)
+
+
+def _write_history(out: Path) -> list[dict[str, float]]:
+    """Lightning's metrics.csv (and those of interrupted parts) -> history.csv, one row per step."""
+    import csv
+
+    sources = sorted(out.glob("metrics-part*.csv")) + ([out / "metrics.csv"] if (out / "metrics.csv").exists() else [])
+    rows: dict[int, dict[str, float]] = {}
+    for src in sources:  # parts of interrupted runs first; later parts win for steps run twice
+        with open(src) as fh:
+            for r in csv.DictReader(fh):
+                step = int(float(r["step"]))
+                rows.setdefault(step, {}).update({k: float(v) for k, v in r.items() if v not in ("", None) and k != "step"})
+    hist = [{"step": k, **v} for k, v in sorted(rows.items()) if "loss" in v]
+    keys = ["step", "loss", "lr", "spread", "alignment", "uniformity"]
+    with open(out / "history.csv", "w", newline="") as fh:
+        w = csv.DictWriter(fh, fieldnames=keys, extrasaction="ignore")
+        w.writeheader()
+        w.writerows(hist)
+    return hist

@@ -1,0 +1,102 @@
+"""Settings of the pretraining stage (the ``[pretrain]`` recipe section)."""
+from __future__ import annotations
+
+import dataclasses
+from dataclasses import dataclass, field
+from typing import Any, Mapping
+
+from ..corpus.settings import settings_from_dict
+from ..errors import RecipeError
+
+__all__ = ["PretrainSettings"]
+
+
+@dataclass(frozen=True)
+class PretrainSettings:
+    """How an encoder is pretrained.
+
+    Parameters
+    ----------
+    encoder : str
+        Registry name (``resnet_narrow``, ``resnet18``, ``resnet50``, ``unet``, ...).
+    encoder_params : dict
+        Constructor parameters; ``in_channels`` defaults to the corpus's channels.
+    method : str
+        ``simclr``, ``moco_v2`` or ``byol``.
+    method_params : dict
+    view1, view2 : dict
+        Augmentation pipelines of the two views (ViewSettings fields); ``view2`` defaults to ``view1``.
+    batch_size, epochs : int
+    max_steps : int, optional
+        Stop after this many optimizer steps (overrides ``epochs``).
+    lr, weight_decay : float
+        AdamW; the learning rate warms up linearly over ``warmup_fraction`` of the steps, then
+        follows a cosine to 0.
+    grad_clip : float
+        Gradient norm clipping (0 disables).
+    precision : str
+        Lightning precision: ``32-true``, ``16-mixed``, ``bf16-mixed``, or ``auto`` (bf16-mixed on
+        a GPU that supports it, else 32-true).
+    accelerator, devices, strategy, num_nodes
+        Passed to Lightning (``auto``; several devices use DDP).
+    num_workers : int
+        DataLoader workers per device.
+    in_memory : str or bool
+        ``auto``, true or false (see CorpusBatches).
+    seed : int
+    deterministic : bool
+        Deterministic algorithms: two runs give identical losses.
+    checkpoint_every : int
+        Steps between checkpoints (plus one at the end).
+    collapse_threshold : float
+        Warn when ``std(normalized embeddings) * sqrt(D)`` falls below this (1 for embeddings
+        spread over the sphere, 0 when all are equal).
+    source_weights : dict
+        Source name -> share of every epoch.
+    """
+
+    encoder: str = "resnet_narrow"
+    encoder_params: dict[str, Any] = field(default_factory=dict)
+    method: str = "simclr"
+    method_params: dict[str, Any] = field(default_factory=dict)
+    view1: dict[str, Any] = field(default_factory=dict)
+    view2: dict[str, Any] | None = None
+    batch_size: int = 128
+    epochs: int = 10
+    max_steps: int | None = None
+    lr: float = 1e-3
+    weight_decay: float = 1e-4
+    warmup_fraction: float = 0.05
+    grad_clip: float = 1.0
+    precision: str = "auto"
+    accelerator: str = "auto"
+    devices: str = "auto"
+    strategy: str = "auto"
+    num_nodes: int = 1
+    num_workers: int = 2
+    in_memory: str = "auto"
+    seed: int = 0
+    deterministic: bool = False
+    checkpoint_every: int = 500
+    collapse_threshold: float = 0.1
+    source_weights: dict[str, Any] = field(default_factory=dict)
+
+    def __post_init__(self) -> None:
+        for name in ("batch_size", "epochs", "checkpoint_every", "num_nodes"):
+            if getattr(self, name) < 1:
+                raise RecipeError(f"pretrain.{name} must be >= 1, got {getattr(self, name)}")
+        if self.max_steps is not None and self.max_steps < 1:
+            raise RecipeError(f"pretrain.max_steps must be >= 1, got {self.max_steps}")
+        if not self.lr > 0 or self.weight_decay < 0 or not 0 <= self.warmup_fraction < 1:
+            raise RecipeError("pretrain.lr must be > 0, weight_decay >= 0 and 0 <= warmup_fraction < 1")
+        if self.precision not in ("auto", "32-true", "32", "16-mixed", "bf16-mixed"):
+            raise RecipeError(f"pretrain.precision {self.precision!r}: expected auto, 32-true, 16-mixed or bf16-mixed")
+        if self.num_workers < 0:
+            raise RecipeError("pretrain.num_workers must be >= 0")
+
+    def to_dict(self) -> dict[str, Any]:
+        return dataclasses.asdict(self)
+
+    @classmethod
+    def from_dict(cls, d: Mapping[str, Any], where: str = "pretrain") -> "PretrainSettings":
+        return settings_from_dict(cls, d, where)

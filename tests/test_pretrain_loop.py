@@ -1,0 +1,172 @@
+"""The pretraining loop: run folder, deterministic reruns, exact resume, NaN stop, collapse warning, DDP."""
+from __future__ import annotations
+
+import csv
+import json
+import shutil
+import signal
+import subprocess
+import sys
+import time
+import warnings
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+torch = pytest.importorskip("torch")
+
+from warmstart.corpus.build import build_corpus  # noqa: E402
+from warmstart.corpus.settings import CorpusSettings, SamplingSettings  # noqa: E402
+from warmstart.errors import PretrainError  # noqa: E402
+from warmstart.pretrain.loop import pretrain  # noqa: E402
+from warmstart.pretrain.methods import register_method  # noqa: E402
+from warmstart.pretrain.methods.simclr import SimCLR  # noqa: E402
+from warmstart.pretrain.settings import PretrainSettings  # noqa: E402
+
+
+@register_method("test_nan_after_3")
+class _NanAfter3(SimCLR):
+    calls = 0
+
+    def loss(self, v1, v2):
+        loss, out = super().loss(v1, v2)
+        type(self).calls += 1
+        return (loss * float("nan") if type(self).calls > 3 else loss), out
+
+
+@register_method("test_collapsed")
+class _Collapsed(SimCLR):
+    """A deliberately collapsed encoder: every weight zero and frozen, so every patch embeds alike."""
+
+    def __init__(self, encoder, **kw):
+        super().__init__(encoder, **kw)
+        for p in self.encoder.parameters():
+            torch.nn.init.zeros_(p)
+            p.requires_grad_(False)
+
+
+@pytest.fixture(scope="module")
+def corpus(tmp_path_factory):
+    from conftest import textured
+
+    root = tmp_path_factory.mktemp("pre")
+    (root / "a").mkdir()
+    for i in range(3):
+        np.save(root / "a" / f"v{i}.npy", textured(shape=(16, 64, 64), seed=i))
+    s = CorpusSettings(sampling=SamplingSettings(patch_size=32, stride=16, slice_stride=1, max_per_source=10_000))
+    return build_corpus(root / "a", root / "c.zarr", s, report=False, progress=False).path
+
+
+FAST = dict(encoder_params={"base_width": 8}, batch_size=32, num_workers=0, checkpoint_every=5, deterministic=True,
+            precision="32-true", accelerator="cpu")
+
+
+def _losses(run: Path) -> dict[int, float]:
+    return {int(r["step"]): float(r["loss"]) for r in csv.DictReader(open(run / "history.csv"))}
+
+
+def test_run_folder_history_and_safe_checkpoint(corpus, tmp_path):
+    res = pretrain(corpus, tmp_path / "run", PretrainSettings(max_steps=12, **FAST), progress=False)
+    run = res.path
+    assert res.steps == 12 and sorted(_losses(run)) == list(range(12))
+    rows = list(csv.DictReader(open(run / "history.csv")))
+    assert {"loss", "lr", "spread", "alignment", "uniformity"} <= set(rows[0])
+    ck = torch.load(run / "checkpoints" / "last.ckpt", weights_only=True)  # no pickled code needed
+    assert ck["global_step"] == 12 and any(k.startswith("method.encoder.") for k in ck["state_dict"])
+    summary = json.loads((run / "summary.json").read_text())
+    assert summary["steps"] == 12 and summary["encoder"]["name"] == "resnet_narrow"
+    assert json.loads((run / "recipe.json").read_text())["pretrain"]["max_steps"] == 12
+    with pytest.raises(PretrainError, match="holds a run already"):
+        pretrain(corpus, run, PretrainSettings(max_steps=12, **FAST), progress=False)
+
+
+def test_deterministic_reruns_give_identical_losses(corpus, tmp_path):
+    s = PretrainSettings(max_steps=10, method="byol", **FAST)
+    a = pretrain(corpus, tmp_path / "a", s, progress=False)
+    b = pretrain(corpus, tmp_path / "b", s, progress=False)
+    assert _losses(a.path) == _losses(b.path)
+
+
+@pytest.mark.parametrize("method,params,workers", [("moco_v2", {"queue_size": 64}, 0), ("simclr", {}, 2)])
+def test_resume_joins_the_uninterrupted_loss_curve(corpus, tmp_path, method, params, workers):
+    s = PretrainSettings(max_steps=24, method=method, method_params=params, **{**FAST, "num_workers": workers})
+    full = pretrain(corpus, tmp_path / "full", s, progress=False)
+    part = tmp_path / "part"
+    (part / "checkpoints").mkdir(parents=True)
+    shutil.copy(full.path / "checkpoints" / "step-15.ckpt", part / "checkpoints" / "last.ckpt")  # as if killed at 15
+    pretrain(corpus, part, s, resume=True, progress=False)
+    a, b = _losses(full.path), _losses(part)
+    assert sorted(b) == list(range(15, 24))
+    for step in b:
+        assert b[step] == pytest.approx(a[step], rel=1e-6), step
+
+
+def test_nonfinite_loss_stops_and_keeps_the_last_good_checkpoint(corpus, tmp_path):
+    _NanAfter3.calls = 0
+    s = PretrainSettings(max_steps=20, method="test_nan_after_3", **{**FAST, "checkpoint_every": 2})
+    with pytest.raises(PretrainError, match="loss is nan at step 3"):
+        pretrain(corpus, tmp_path / "run", s, progress=False)
+    kept = sorted(p.name for p in (tmp_path / "run" / "checkpoints").glob("step-*.ckpt"))
+    assert kept == ["step-2.ckpt"]
+    assert torch.load(tmp_path / "run" / "checkpoints" / "step-2.ckpt", weights_only=True)["global_step"] == 2
+
+
+def test_collapse_warning_for_a_collapsed_encoder(corpus, tmp_path):
+    s = PretrainSettings(epochs=1, method="test_collapsed", **FAST)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        res = pretrain(corpus, tmp_path / "run", s, progress=False)
+    assert any("representation collapse" in str(w.message) for w in caught)
+    assert res.summary["final_spread"] < 0.1
+    healthy = pretrain(corpus, tmp_path / "ok", PretrainSettings(max_steps=5, **FAST), progress=False)
+    assert healthy.summary["final_spread"] > 0.3
+
+
+def test_unknown_source_weight_and_missing_resume(corpus, tmp_path):
+    with pytest.raises(PretrainError, match="not a source"):
+        pretrain(corpus, tmp_path / "r", PretrainSettings(source_weights={"nope.tif": 1.0}, **FAST), progress=False)
+    with pytest.raises(PretrainError, match="nothing to resume"):
+        pretrain(corpus, tmp_path / "r2", PretrainSettings(**FAST), resume=True, progress=False)
+
+
+def _cli(*args):
+    return [sys.executable, "-m", "warmstart", "-q", "pretrain", *map(str, args)]
+
+
+def _latest_step(run: Path) -> int:
+    steps = [int(p.stem.split("-")[1]) for p in (run / "checkpoints").glob("step-*.ckpt")] if (run / "checkpoints").exists() else []
+    return max(steps, default=-1)
+
+
+@pytest.mark.slow
+def test_kill_and_resume_a_real_training_process(corpus, tmp_path):
+    common = ["--recipe", "smoke", "--max-steps", "300", "--deterministic", "--set", "pretrain.checkpoint_every=10"]
+    subprocess.run(_cli(corpus, "-o", tmp_path / "full", *common), check=True, capture_output=True)
+    run = tmp_path / "killed"
+    proc = subprocess.Popen(_cli(corpus, "-o", run, *common), stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    deadline = time.time() + 300
+    while time.time() < deadline and _latest_step(run) < 30:  # older checkpoints are pruned: look for any >= 30
+        time.sleep(0.02)
+    proc.send_signal(signal.SIGKILL)
+    proc.wait()
+    killed_at = _latest_step(run)
+    assert 30 <= killed_at < 300 and not (run / "summary.json").exists(), "the run was not killed mid-way"
+    subprocess.run(_cli(corpus, "-o", run, *common, "--resume"), check=True, capture_output=True)
+    a, b = _losses(tmp_path / "full"), _losses(run)
+    assert set(range(killed_at, 300)) <= set(b)  # the resumed part, and the killed part's flushed rows
+    for step, loss in b.items():  # deterministic: the killed part and the resumed part both match
+        assert loss == pytest.approx(a[step], rel=1e-6), step
+    assert torch.load(run / "checkpoints" / "last.ckpt", weights_only=True)["global_step"] == 300
+
+
+@pytest.mark.slow
+def test_ddp_two_cpu_processes_end_with_identical_weights(corpus, tmp_path):
+    proc = subprocess.run(_cli(corpus, "-o", tmp_path / "ddp", "--recipe", "smoke", "--max-steps", "6", "--devices", "2",
+                               "--strategy", "ddp", "--accelerator", "cpu", "--json"),
+                          capture_output=True, text=True, timeout=600)
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    summary = json.loads((tmp_path / "ddp" / "summary.json").read_text())
+    checks = summary["rank_checksums"]
+    assert len(checks) == 2 and checks[0] == checks[1]
+    assert summary["steps"] == 6
