@@ -90,7 +90,8 @@ def test_deterministic_reruns_give_identical_losses(corpus, tmp_path):
 
 @pytest.mark.parametrize("method,params,workers", [("moco_v2", {"queue_size": 64}, 0), ("simclr", {}, 2)])
 def test_resume_joins_the_uninterrupted_loss_curve(corpus, tmp_path, method, params, workers):
-    s = PretrainSettings(max_steps=24, method=method, method_params=params, **{**FAST, "num_workers": workers})
+    s = PretrainSettings(max_steps=24, method=method, method_params=params,
+                         **{**FAST, "num_workers": workers, "in_memory": workers == 0})  # workers read from disk
     full = pretrain(corpus, tmp_path / "full", s, progress=False)
     part = tmp_path / "part"
     (part / "checkpoints").mkdir(parents=True)

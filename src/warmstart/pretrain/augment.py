@@ -192,29 +192,44 @@ def _blur(x: torch.Tensor, sigma: torch.Tensor) -> torch.Tensor:
     return y.reshape(b, c, h, w)
 
 
+def _interpolation(start: torch.Tensor, extent: torch.Tensor, n_in: int, n_out: int) -> torch.Tensor:
+    """(B, n_out, n_in) linear-interpolation weights sampling [start, start + extent) (fractions of
+    the input) at ``n_out`` pixel centres; positions are clamped to the outermost pixel centres."""
+    j = torch.arange(n_out, device=start.device, dtype=torch.float32)
+    u = (start[:, None] + (j[None] + 0.5) / n_out * extent[:, None]) * n_in - 0.5  # input pixel coordinates
+    u = u.clamp(0, n_in - 1)
+    i0 = u.floor().long()
+    i1 = (i0 + 1).clamp(max=n_in - 1)
+    t = u - i0
+    w = torch.zeros(start.shape[0], n_out, n_in, device=start.device)
+    w.scatter_add_(2, i0[..., None], (1 - t)[..., None])
+    w.scatter_add_(2, i1[..., None], t[..., None])
+    return w
+
+
 def _geometry(x: torch.Tensor, p: ViewParams) -> torch.Tensor:
-    b = x.shape[0]
     top, left, h, w = p.crop.unbind(-1)
-    # affine_grid maps output coordinates in [-1, 1] to input coordinates; a crop is a scale and a shift.
-    theta = torch.zeros(b, 2, 3, device=x.device, dtype=x.dtype)
-    theta[:, 0, 0] = w
-    theta[:, 1, 1] = h
-    theta[:, 0, 2] = 2 * left + w - 1
-    theta[:, 1, 2] = 2 * top + h - 1
     size = p.output_size
     identity = bool(((p.crop - torch.tensor([0, 0, 1, 1], device=x.device)).abs().max() == 0)) and size == x.shape[-1] == x.shape[-2]
     if not identity:
-        grid = F.affine_grid(theta, [b, x.shape[1], size, size], align_corners=False)
-        x = F.grid_sample(x, grid, mode="bilinear", padding_mode="reflection", align_corners=False)
-    x = torch.where(p.flip_x[:, None, None, None], x.flip(-1), x)
-    x = torch.where(p.flip_y[:, None, None, None], x.flip(-2), x)
+        # An axis-aligned crop resized bilinearly is separable: two batched matrix products with
+        # per-sample interpolation weights (several times faster than grid_sample on a CPU).
+        wy = _interpolation(top, h, x.shape[-2], size).to(x.dtype)  # (B, S, H)
+        wx = _interpolation(left, w, x.shape[-1], size).to(x.dtype)  # (B, S, W)
+        x = wy[:, None] @ x @ wx[:, None].transpose(-1, -2)  # (B, C, S, S)
+    # Flip and turn only the samples that draw it (index assignment, not a where over copies).
+    x = x.clone() if identity else x
+    for mask, dims in ((p.flip_x, (-1,)), (p.flip_y, (-2,))):
+        sel = mask.nonzero().flatten()
+        if len(sel):
+            x[sel] = x[sel].flip(dims)
     if bool((p.turns > 0).any()):
         if x.shape[-1] != x.shape[-2]:
             raise ValueError("quarter turns need square views")
-        out = x
         for k in (1, 2, 3):
-            out = torch.where((p.turns == k)[:, None, None, None], torch.rot90(x, k, dims=(-2, -1)), out)
-        x = out
+            sel = (p.turns == k).nonzero().flatten()
+            if len(sel):
+                x[sel] = torch.rot90(x[sel], k, dims=(-2, -1))
     eye = torch.tensor([[1.0, 0, 0], [0, 1.0, 0]], device=x.device, dtype=x.dtype)
     if bool((p.affine != eye).any()):
         grid = F.affine_grid(p.affine.to(x.dtype), list(x.shape), align_corners=False)
@@ -240,22 +255,29 @@ def apply_view(x: torch.Tensor, p: ViewParams, generator: torch.Generator) -> to
         ``S = p.output_size``.
     """
     x = _geometry(x, p)
-    x = _blur(x, p.blur_sigma)
-    # Each photometric step touches only the samples it is on for, so "off" is exactly the identity.
-    jitter = ((p.contrast != 1) | (p.brightness != 0))[:, None, None, None]
-    if bool(jitter.any()):
-        mean = x.mean(dim=(1, 2, 3), keepdim=True)
-        x = torch.where(jitter, (x - mean) * p.contrast[:, None, None, None] + mean + p.brightness[:, None, None, None], x)
-    g = p.gamma[:, None, None, None]
-    if bool((g != 1).any()):
-        x = torch.where(g != 1, torch.sign(x) * x.abs().pow(g), x)
-    if bool((p.noise_sigma > 0).any()):
-        noise = p.noise_sigma[:, None, None, None] * torch.randn(x.shape, generator=generator, device=x.device, dtype=x.dtype)
-        x = torch.where((p.noise_sigma > 0)[:, None, None, None], x + noise, x)
-    if bool((p.shot_scale > 0).any()):
-        var = p.shot_scale[:, None, None, None] * x.clamp(min=0)
-        noisy = x + var.sqrt() * torch.randn(x.shape, generator=generator, device=x.device, dtype=x.dtype)
-        x = torch.where((p.shot_scale > 0)[:, None, None, None], noisy, x)
+    sel = (p.blur_sigma > 0).nonzero().flatten()
+    if len(sel):
+        x[sel] = _blur(x[sel], p.blur_sigma[sel])
+    # Each photometric step touches only the samples it is on for: "off" is exactly the identity,
+    # and a batch pays only for the samples that draw a transform.
+    sel = ((p.contrast != 1) | (p.brightness != 0)).nonzero().flatten()
+    if len(sel):
+        v = x[sel]
+        mean = v.mean(dim=(1, 2, 3), keepdim=True)
+        x[sel] = (v - mean) * p.contrast[sel, None, None, None] + mean + p.brightness[sel, None, None, None]
+    sel = (p.gamma != 1).nonzero().flatten()
+    if len(sel):
+        v = x[sel]
+        x[sel] = torch.sign(v) * v.abs().pow(p.gamma[sel, None, None, None])
+    sel = (p.noise_sigma > 0).nonzero().flatten()
+    if len(sel):
+        noise = torch.randn((len(sel),) + tuple(x.shape[1:]), generator=generator, device=x.device, dtype=x.dtype)
+        x[sel] = x[sel] + p.noise_sigma[sel, None, None, None] * noise
+    sel = (p.shot_scale > 0).nonzero().flatten()
+    if len(sel):
+        v = x[sel]
+        noise = torch.randn(v.shape, generator=generator, device=x.device, dtype=x.dtype)
+        x[sel] = v + (p.shot_scale[sel, None, None, None] * v.clamp(min=0)).sqrt() * noise
     if bool((p.cutout[:, 2] > 0).any()):
         s = x.shape[-1]
         yy = torch.arange(s, device=x.device)[None, :, None]

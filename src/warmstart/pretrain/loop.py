@@ -171,7 +171,6 @@ def pretrain(corpus: str | os.PathLike[str], out: str | os.PathLike[str], settin
         Non-finite loss (the last good checkpoint is kept), or nothing to resume.
     """
     from pytorch_lightning.callbacks import ModelCheckpoint
-    from pytorch_lightning.loggers import CSVLogger
 
     from ..corpus.store import open_corpus
 
@@ -196,15 +195,18 @@ def pretrain(corpus: str | os.PathLike[str], out: str | os.PathLike[str], settin
         raise PretrainError(f"pretrain.source_weights names {unknown[0]!r}, which is not a source of {corpus}")
     weights = {names[k]: float(v) for k, v in s.source_weights.items()} or None
     pl.seed_everything(s.seed, workers=True, verbose=False)
-    ds = CorpusBatches(corpus, s.batch_size, seed=s.seed, in_memory=s.in_memory if s.in_memory == "auto" else bool(s.in_memory),
+    ds = CorpusBatches(corpus, s.batch_size, seed=s.seed, in_memory=s.in_memory,
                        source_weights=weights, num_workers=s.num_workers)
+    # A corpus held in memory needs no loader processes: they would only take cores from the model
+    # (measured: 0.80 -> 0.89 of the bare model step's throughput on 2 cores).
+    ds.num_workers = 0 if ds.in_memory else s.num_workers
     ckpt = ModelCheckpoint(dirpath=ckpt_dir, filename="step-{step}", every_n_train_steps=s.checkpoint_every,
                            monitor="step", mode="max", save_top_k=3, save_last=True, auto_insert_metric_name=False)
     position = _EpochPosition(ds, 0)
     trainer = pl.Trainer(
         max_steps=-1, accelerator=s.accelerator, devices=s.devices, strategy=s.strategy,
         num_nodes=s.num_nodes, precision=_precision(s), gradient_clip_val=s.grad_clip or None,
-        deterministic=s.deterministic, logger=CSVLogger(out, name="", version="", flush_logs_every_n_steps=10),
+        deterministic=s.deterministic, logger=_loggers(out),
         callbacks=[ckpt, position], enable_progress_bar=progress,
         enable_model_summary=False, log_every_n_steps=1, default_root_dir=out,
         use_distributed_sampler=False,
@@ -229,7 +231,7 @@ def pretrain(corpus: str | os.PathLike[str], out: str | os.PathLike[str], settin
         done = int(torch.load(last, map_location="cpu", weights_only=True)["global_step"])
         ds.set_epoch(done // steps_per_epoch)
         ds.start_batch = done % steps_per_epoch
-    loader = torch.utils.data.DataLoader(ds, batch_size=None, num_workers=s.num_workers,
+    loader = torch.utils.data.DataLoader(ds, batch_size=None, num_workers=ds.num_workers,
                                          persistent_workers=False, pin_memory=torch.cuda.is_available())
     t0 = time.perf_counter()
     with warnings.catch_warnings():
@@ -253,6 +255,21 @@ def pretrain(corpus: str | os.PathLike[str], out: str | os.PathLike[str], settin
     if trainer.is_global_zero:
         (out / "summary.json").write_text(json.dumps(summary, indent=1))
     return PretrainResult(out, int(trainer.global_step), summary["final_loss"], summary)
+
+
+def _loggers(out: Path) -> list[Any]:
+    """CSV always; TensorBoard too when it is installed."""
+    from pytorch_lightning.loggers import CSVLogger
+
+    loggers: list[Any] = [CSVLogger(out, name="", version="", flush_logs_every_n_steps=10)]
+    try:
+        import tensorboard  # noqa: F401
+    except ImportError:
+        return loggers
+    from pytorch_lightning.loggers import TensorBoardLogger
+
+    loggers.append(TensorBoardLogger(out, name="tensorboard", version=""))
+    return loggers
 
 
 def _write_history(out: Path) -> list[dict[str, float]]:

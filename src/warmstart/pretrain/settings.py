@@ -40,7 +40,8 @@ class PretrainSettings:
     accelerator, devices, strategy, num_nodes
         Passed to Lightning (``auto``; several devices use DDP).
     num_workers : int
-        DataLoader workers per device.
+        DataLoader workers per device for corpora read from disk (a corpus held in memory is
+        served without worker processes).
     in_memory : str or bool
         ``auto``, true or false (see CorpusBatches).
     seed : int
@@ -74,7 +75,7 @@ class PretrainSettings:
     strategy: str = "auto"
     num_nodes: int = 1
     num_workers: int = 2
-    in_memory: str = "auto"
+    in_memory: bool | str = "auto"
     seed: int = 0
     deterministic: bool = False
     checkpoint_every: int = 500
@@ -93,6 +94,8 @@ class PretrainSettings:
             raise RecipeError(f"pretrain.precision {self.precision!r}: expected auto, 32-true, 16-mixed or bf16-mixed")
         if self.num_workers < 0:
             raise RecipeError("pretrain.num_workers must be >= 0")
+        if self.in_memory not in ("auto", True, False):
+            raise RecipeError(f"pretrain.in_memory must be true, false or \"auto\", got {self.in_memory!r}")
 
     def to_dict(self) -> dict[str, Any]:
         return dataclasses.asdict(self)
