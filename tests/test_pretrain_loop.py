@@ -171,3 +171,31 @@ def test_ddp_two_cpu_processes_end_with_identical_weights(corpus, tmp_path):
     checks = summary["rank_checksums"]
     assert len(checks) == 2 and checks[0] == checks[1]
     assert summary["steps"] == 6
+
+
+def test_knn_accuracy_against_brute_force_and_in_a_run(corpus, tmp_path):
+    from warmstart.pretrain.monitors import knn_accuracy
+
+    g = torch.Generator().manual_seed(0)
+    z, y = torch.randn(60, 8, generator=g), torch.randint(0, 3, (60,), generator=g)
+    zn = (z / z.norm(dim=1, keepdim=True)).numpy().astype(np.float64)
+    sim = zn @ zn.T
+    np.fill_diagonal(sim, -np.inf)
+    correct = 0
+    for i in range(60):  # brute force: 20 nearest others, votes weighted by exp(sim / 0.07)
+        nn = np.argsort(-sim[i])[:20]
+        votes = np.zeros(3)
+        for j in nn:
+            votes[y[j]] += np.exp(sim[i, j] / 0.07)
+        correct += votes.argmax() == y[i]
+    assert knn_accuracy(z, y) == pytest.approx(correct / 60)
+    clusters = torch.cat([torch.randn(30, 8, generator=g) * 0.05 + c for c in (torch.eye(8)[0] * 3, torch.eye(8)[1] * 3)])
+    assert knn_accuracy(clusters, torch.repeat_interleave(torch.tensor([0, 1]), 30)) == 1.0
+    # in a run: a probe of bright and dark patches, one figure per epoch
+    rng = np.random.default_rng(0)
+    patches = np.concatenate([rng.random((20, 1, 32, 32)) * 0.2, 0.8 + rng.random((20, 1, 32, 32)) * 0.2]).astype(np.float32)
+    np.savez(tmp_path / "probe.npz", patches=patches, labels=np.repeat([0, 1], 20))
+    res = pretrain(corpus, tmp_path / "run", PretrainSettings(epochs=2, probe=str(tmp_path / "probe.npz"), **FAST), progress=False)
+    assert len(res.summary["knn_per_epoch"]) == 2 and all(0 <= a <= 1 for a in res.summary["knn_per_epoch"])
+    rows = list(csv.DictReader(open(res.path / "history.csv")))
+    assert sum(1 for r in rows if r["knn"]) == 2 and all(r["loss"] for r in rows)

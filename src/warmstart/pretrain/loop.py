@@ -27,7 +27,7 @@ from ..encoders import build_encoder
 from .augment import ViewSettings, apply_view, draw_params
 from .data import CorpusBatches
 from .methods import build_method
-from .monitors import alignment, embedding_spread, uniformity
+from .monitors import alignment, embedding_spread, knn_accuracy, load_probe, uniformity
 from .settings import PretrainSettings
 
 __all__ = ["pretrain", "PretrainResult", "PretrainModule"]
@@ -51,6 +51,8 @@ class PretrainModule(pl.LightningModule):
         self.view2 = ViewSettings.from_dict(s.view2) if s.view2 is not None else self.view1
         self.total_steps = int(total_steps)
         self.spreads: list[float] = []
+        self.probe = load_probe(s.probe) if s.probe else None
+        self.knn_history: list[float] = []
 
     def training_step(self, batch: torch.Tensor, batch_idx: int) -> torch.Tensor:
         step = int(self.global_step)
@@ -96,6 +98,16 @@ class PretrainModule(pl.LightningModule):
             warnings.warn(f"ranks ended with different weights (checksums {self.rank_checksums})", stacklevel=2)
 
     def on_train_epoch_end(self) -> None:
+        if self.probe is not None:
+            x, y = self.probe
+            was = self.method.encoder.training
+            self.method.encoder.eval()
+            with torch.no_grad():
+                emb = torch.cat([self.method.embed(x[i:i + 256].to(self.device)).cpu() for i in range(0, len(x), 256)])
+            self.method.encoder.train(was)
+            acc = knn_accuracy(emb, y)
+            self.knn_history.append(acc)
+            self.log("knn", acc, on_step=False, on_epoch=True, prog_bar=True)
         if self.spreads and float(np.mean(self.spreads)) < self.s.collapse_threshold:
             warnings.warn(
                 f"representation collapse: embedding spread {np.mean(self.spreads):.3f} (std of normalized "
@@ -251,6 +263,7 @@ def pretrain(corpus: str | os.PathLike[str], out: str | os.PathLike[str], settin
         "final_spread": history[-1]["spread"] if history else None, "seconds": round(seconds, 1),
         "corpus": str(store.path), "patches": len(store), "resumed": resume,
         "rank_checksums": getattr(module, "rank_checksums", None),
+        "knn_per_epoch": module.knn_history or None,
     }
     if trainer.is_global_zero:
         (out / "summary.json").write_text(json.dumps(summary, indent=1))
@@ -283,8 +296,14 @@ def _write_history(out: Path) -> list[dict[str, float]]:
             for r in csv.DictReader(fh):
                 step = int(float(r["step"]))
                 rows.setdefault(step, {}).update({k: float(v) for k, v in r.items() if v not in ("", None) and k != "step"})
-    hist = [{"step": k, **v} for k, v in sorted(rows.items()) if "loss" in v]
-    keys = ["step", "loss", "lr", "spread", "alignment", "uniformity"]
+    # Epoch-end figures (knn) join the row of the latest step with a loss at or before them.
+    hist: list[dict[str, float]] = []
+    for k, v in sorted(rows.items()):
+        if "loss" in v:
+            hist.append({"step": k, **v})
+        elif hist:
+            hist[-1].update({m: x for m, x in v.items() if m != "epoch"})
+    keys = ["step", "loss", "lr", "spread", "alignment", "uniformity", "knn"]
     with open(out / "history.csv", "w", newline="") as fh:
         w = csv.DictWriter(fh, fieldnames=keys, extrasaction="ignore")
         w.writeheader()

@@ -54,6 +54,9 @@ class PretrainSettings:
         spread over the sphere, 0 when all are equal).
     source_weights : dict
         Source name -> share of every epoch.
+    probe : str, optional
+        A labelled probe set (``.npz`` with ``patches`` and integer ``labels``); its leave-one-out
+        kNN accuracy on the encoder's embeddings is logged after every epoch (``knn`` in history).
     """
 
     encoder: str = "resnet_narrow"
@@ -81,6 +84,7 @@ class PretrainSettings:
     checkpoint_every: int = 500
     collapse_threshold: float = 0.1
     source_weights: dict[str, Any] = field(default_factory=dict)
+    probe: str | None = None
 
     def __post_init__(self) -> None:
         for name in ("batch_size", "epochs", "checkpoint_every", "num_nodes"):
