@@ -124,6 +124,14 @@ def test_collapse_warning_for_a_collapsed_encoder(corpus, tmp_path):
     assert healthy.summary["final_spread"] > 0.3
 
 
+def test_mixed_precision_runs_on_cpu(corpus, tmp_path):
+    """bf16 autocast (the GPU default where supported) exercised on the CPU: a regression test for
+    views that mixed bfloat16 and float32 tensors."""
+    s = PretrainSettings(max_steps=4, method="moco_v2", method_params={"queue_size": 64}, **{**FAST, "precision": "bf16-mixed"})
+    res = pretrain(corpus, tmp_path / "bf16", s, progress=False)
+    assert res.steps == 4 and np.isfinite(res.final_loss)
+
+
 def test_unknown_source_weight_and_missing_resume(corpus, tmp_path):
     with pytest.raises(PretrainError, match="not a source"):
         pretrain(corpus, tmp_path / "r", PretrainSettings(source_weights={"nope.tif": 1.0}, **FAST), progress=False)

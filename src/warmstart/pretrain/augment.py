@@ -257,27 +257,27 @@ def apply_view(x: torch.Tensor, p: ViewParams, generator: torch.Generator) -> to
     x = _geometry(x, p)
     sel = (p.blur_sigma > 0).nonzero().flatten()
     if len(sel):
-        x[sel] = _blur(x[sel], p.blur_sigma[sel])
+        x[sel] = _blur(x[sel], p.blur_sigma[sel]).to(x.dtype)
     # Each photometric step touches only the samples it is on for: "off" is exactly the identity,
     # and a batch pays only for the samples that draw a transform.
     sel = ((p.contrast != 1) | (p.brightness != 0)).nonzero().flatten()
     if len(sel):
         v = x[sel]
         mean = v.mean(dim=(1, 2, 3), keepdim=True)
-        x[sel] = (v - mean) * p.contrast[sel, None, None, None] + mean + p.brightness[sel, None, None, None]
+        x[sel] = ((v - mean) * p.contrast[sel, None, None, None] + mean + p.brightness[sel, None, None, None]).to(x.dtype)
     sel = (p.gamma != 1).nonzero().flatten()
     if len(sel):
         v = x[sel]
-        x[sel] = torch.sign(v) * v.abs().pow(p.gamma[sel, None, None, None])
+        x[sel] = (torch.sign(v) * v.abs().pow(p.gamma[sel, None, None, None])).to(x.dtype)
     sel = (p.noise_sigma > 0).nonzero().flatten()
     if len(sel):
         noise = torch.randn((len(sel),) + tuple(x.shape[1:]), generator=generator, device=x.device, dtype=x.dtype)
-        x[sel] = x[sel] + p.noise_sigma[sel, None, None, None] * noise
+        x[sel] = (x[sel] + p.noise_sigma[sel, None, None, None] * noise).to(x.dtype)
     sel = (p.shot_scale > 0).nonzero().flatten()
     if len(sel):
         v = x[sel]
         noise = torch.randn(v.shape, generator=generator, device=x.device, dtype=x.dtype)
-        x[sel] = v + (p.shot_scale[sel, None, None, None] * v.clamp(min=0)).sqrt() * noise
+        x[sel] = (v + (p.shot_scale[sel, None, None, None] * v.clamp(min=0)).sqrt() * noise).to(x.dtype)
     if bool((p.cutout[:, 2] > 0).any()):
         s = x.shape[-1]
         yy = torch.arange(s, device=x.device)[None, :, None]

@@ -59,8 +59,10 @@ class PretrainModule(pl.LightningModule):
         g = torch.Generator(device=batch.device)
         g.manual_seed(_step_seed(self.s.seed, step, self.global_rank))
         b, size = batch.shape[0], batch.shape[-1]  # (B, C, P, P)
-        x1 = apply_view(batch, draw_params(b, size, self.view1, g, batch.device), g)
-        x2 = apply_view(batch, draw_params(b, size, self.view2, g, batch.device), g)
+        # Views in float32 whatever the training precision: cheap next to the model, and exact.
+        with torch.autocast(device_type=batch.device.type, enabled=False):
+            x1 = apply_view(batch.float(), draw_params(b, size, self.view1, g, batch.device), g)
+            x2 = apply_view(batch.float(), draw_params(b, size, self.view2, g, batch.device), g)
         loss, out = self.method.loss(x1, x2)
         if not bool(torch.isfinite(loss)):
             raise PretrainError(
