@@ -124,3 +124,10 @@ def test_help_scan_and_corpus_never_import_torch(small_archive, tmp_path):
     probe = subprocess.run([sys.executable, "-c", "import sys, warmstart, warmstart.cli, warmstart.corpus.build, "
                             "warmstart.corpus.scan; print('torch' in sys.modules)"], env=env, capture_output=True, text=True)
     assert probe.stdout.strip() == "False"
+
+
+def test_pretrain_without_torch_says_what_to_install(small_archive, tmp_path):
+    env = _fake_torch(tmp_path)
+    proc = subprocess.run([sys.executable, "-m", "warmstart", "-q", "pretrain", str(tmp_path / "c.zarr"), "-o",
+                           str(tmp_path / "run")], env=env, capture_output=True, text=True, timeout=120)
+    assert proc.returncode == 1 and "pip install 'warmstart[train]'" in proc.stderr

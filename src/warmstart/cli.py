@@ -264,7 +264,12 @@ def cmd_pretrain(args: argparse.Namespace) -> int:
         if value is not None:
             overrides.append(f"pretrain.{key}={json.dumps(value)}")
     recipe = load_recipe(args.recipe, overrides, default_section="pretrain")
-    from .pretrain.loop import pretrain  # imports torch: only this command pays for it
+    try:
+        from .pretrain.loop import pretrain  # imports torch: only this command pays for it
+    except ImportError as err:
+        print(f"warmstart: error: pretraining needs torch, torchvision, lightly and pytorch-lightning ({err}); "
+              "install them with: pip install 'warmstart[train]' (from a clone: pip install -e '.[train]')", file=sys.stderr)
+        return EXIT_ERROR
 
     result = pretrain(args.corpus, args.output, recipe.pretrain, resume=args.resume, progress=not args.quiet)
     if args.json:
