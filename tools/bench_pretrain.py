@@ -9,7 +9,7 @@
 
 Also prints the end-to-end figure of ``warmstart.pretrain.loop.pretrain`` (Lightning included).
 
-Usage: python tools/bench_pretrain.py [--patch 64] [--batch 128] [--steps 30] [--encoder resnet_narrow]
+Usage: python tools/bench_pretrain.py [--patch 64] [--batch 128] [--steps 12] [--rounds 5] [--encoder resnet_narrow]
 """
 from __future__ import annotations
 
@@ -53,9 +53,8 @@ def step(method, opt, v1: torch.Tensor, v2: torch.Tensor) -> float:
     return float(loss)
 
 
-def timed(batches, method, opt, steps: int, warmup: int = 3) -> float:
+def timed(it, method, opt, steps: int, warmup: int = 2) -> float:
     """Pairs per second over ``steps`` steps after ``warmup`` (the iterator yields (v1, v2))."""
-    it = iter(batches)
     for _ in range(warmup):
         step(method, opt, *next(it))
     t0 = time.perf_counter()
@@ -130,7 +129,8 @@ def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--patch", type=int, default=64)
     ap.add_argument("--batch", type=int, default=128)
-    ap.add_argument("--steps", type=int, default=30)
+    ap.add_argument("--steps", type=int, default=12, help="timed steps per round")
+    ap.add_argument("--rounds", type=int, default=5)
     ap.add_argument("--workers", type=int, default=2)
     ap.add_argument("--encoder", default="resnet_narrow")
     args = ap.parse_args()
@@ -142,13 +142,21 @@ def main() -> None:
 
         print(f"corpus: {len(open_corpus(corpus))} patches of {args.patch} px; encoder {args.encoder}, batch {args.batch}, "
               f"{torch.get_num_threads()} torch threads, {args.workers} loader workers")
-        figures = {}
-        for name, batches in (("a: bare model step", bare(args.batch, args.patch)),
-                              ("b: ours (store + batched views)", ours(corpus, args.batch, args.workers)),
-                              ("c: reference (per-sample PIL views in workers)", reference(corpus, args.batch, args.workers, args.patch))):
-            method, opt = model_and_opt(args.encoder, 1)
-            figures[name[0]] = timed(batches, method, opt, args.steps)
-            print(f"  {name:48s} {figures[name[0]]:8.1f} pairs/s")
+        # Interleave the three pipelines over several rounds and take medians: on a shared
+        # 2-core machine a single timing drifts by 15 % from one minute to the next.
+        pipelines = {"a": ("bare model step", bare(args.batch, args.patch)),
+                     "b": ("ours (store + batched views)", ours(corpus, args.batch, args.workers)),
+                     "c": ("reference (per-sample PIL views in workers)", reference(corpus, args.batch, args.workers, args.patch))}
+        models = {k: model_and_opt(args.encoder, 1) for k in pipelines}
+        iters = {k: iter(v[1]) for k, v in pipelines.items()}
+        runs: dict[str, list[float]] = {k: [] for k in pipelines}
+        for _ in range(args.rounds):
+            for k in pipelines:
+                runs[k].append(timed(iters[k], *models[k], args.steps))
+        figures = {k: float(np.median(v)) for k, v in runs.items()}
+        for k, (name, _) in pipelines.items():
+            print(f"  {k}: {name:46s} {figures[k]:8.1f} pairs/s (median of {args.rounds}; "
+                  f"{min(runs[k]):.0f}-{max(runs[k]):.0f})")
         print(f"  (b)/(a) = {figures['b'] / figures['a']:.2f}   (target >= 0.85)")
         print(f"  (b)/(c) = {figures['b'] / figures['c']:.2f}   (target >= 1.5)")
         from warmstart.pretrain.loop import pretrain
