@@ -123,15 +123,20 @@ _SHORTCUTS = {
 }
 
 
+def _overrides(args: argparse.Namespace, shortcuts: dict[str, str], prefix: str = "") -> list[str]:
+    """``--set`` items plus the shortcut flags the user gave, as ``key=value`` overrides."""
+    overrides = list(args.overrides)
+    for attr, key in shortcuts.items():
+        value = getattr(args, attr, None)
+        if value is not None:
+            overrides.append(f"{prefix}{key}={json.dumps(value)}")
+    return overrides
+
+
 def _recipe(args: argparse.Namespace) -> Any:
     from .recipe import load_recipe
 
-    overrides = list(args.overrides)
-    for attr, key in _SHORTCUTS.items():
-        value = getattr(args, attr, None)
-        if value is not None:
-            overrides.append(f"{key}={json.dumps(value)}")
-    return load_recipe(args.recipe, overrides)
+    return load_recipe(args.recipe, _overrides(args, _SHORTCUTS))
 
 
 def _print_json(data: Any) -> None:
@@ -258,12 +263,7 @@ _PRETRAIN_SHORTCUTS = {
 def cmd_pretrain(args: argparse.Namespace) -> int:
     from .recipe import load_recipe
 
-    overrides = list(args.overrides)
-    for attr, key in _PRETRAIN_SHORTCUTS.items():
-        value = getattr(args, attr, None)
-        if value is not None:
-            overrides.append(f"pretrain.{key}={json.dumps(value)}")
-    recipe = load_recipe(args.recipe, overrides, default_section="pretrain")
+    recipe = load_recipe(args.recipe, _overrides(args, _PRETRAIN_SHORTCUTS, "pretrain."), default_section="pretrain")
     try:
         from .pretrain.loop import pretrain  # imports torch: only this command pays for it
     except ImportError as err:

@@ -9,20 +9,17 @@ stronger augmentation). Loss (NT-Xent with a memory bank), head and momentum uti
 """
 from __future__ import annotations
 
-import copy
-
 import torch
 from lightly.loss import NTXentLoss
 from lightly.models.modules.heads import MoCoProjectionHead
-from lightly.models.utils import deactivate_requires_grad, update_momentum
-from lightly.utils.scheduler import cosine_schedule
 from torch import nn
 
-from .base import Method, pooled, register_method
+from .base import pooled, register_method
+from .momentum import MomentumMethod
 
 
 @register_method("moco_v2")
-class MoCoV2(Method):
+class MoCoV2(MomentumMethod):
     """Parameters: head sizes, ``temperature``, ``queue_size`` (negatives kept), and the momentum
     going from ``momentum`` to 1 on a cosine schedule over training."""
 
@@ -31,11 +28,7 @@ class MoCoV2(Method):
         super().__init__(encoder)
         dim = encoder.spec.out_channels
         self.head = MoCoProjectionHead(dim, hidden_dim, output_dim)
-        self.encoder_momentum = copy.deepcopy(encoder)
-        self.head_momentum = copy.deepcopy(self.head)
-        deactivate_requires_grad(self.encoder_momentum)
-        deactivate_requires_grad(self.head_momentum)
-        self.base_momentum = momentum
+        self._make_momentum_copies(momentum)
         self.criterion = NTXentLoss(temperature=temperature, memory_bank_size=(queue_size, output_dim), gather_distributed=True)
 
     def loss(self, view1: torch.Tensor, view2: torch.Tensor) -> tuple[torch.Tensor, dict[str, torch.Tensor]]:
@@ -45,15 +38,6 @@ class MoCoV2(Method):
             f2 = pooled(self.encoder_momentum, view2)
             k = self.head_momentum(f2)  # keys (B, D)
         return self.criterion(q, k), {"embedding": f1.detach(), "embedding2": f2}
-
-    def momentum_at(self, step: int, total_steps: int) -> float:
-        return float(cosine_schedule(step, max(total_steps, 1), self.base_momentum, 1.0))
-
-    @torch.no_grad()
-    def after_step(self, step: int, total_steps: int) -> None:
-        m = self.momentum_at(step, total_steps)
-        update_momentum(self.encoder, self.encoder_momentum, m)
-        update_momentum(self.head, self.head_momentum, m)
 
     def extra_state(self) -> dict[str, torch.Tensor]:
         # lightly keeps the queue in non-persistent buffers; a resumed run needs it back.
@@ -65,6 +49,3 @@ class MoCoV2(Method):
             bank = self.criterion.memory_bank
             bank.bank.copy_(state["queue"].to(bank.bank.device))
             bank.bank_ptr.copy_(state["queue_ptr"].to(bank.bank_ptr.device))
-
-    def exported_encoder(self, momentum: bool = False) -> nn.Module:
-        return self.encoder_momentum if momentum else self.encoder
