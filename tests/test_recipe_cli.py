@@ -34,6 +34,12 @@ def test_unknown_key_names_key_and_file(tmp_path):
     p.write_text("[pretraining]\nx = 1\n")
     with pytest.raises(RecipeError, match="unknown section or key 'pretraining'"):
         load_recipe(p)
+    p.write_text("[pretrain.view1]\nblur_sigmas = [0.1, 1.0]\n")  # a typo in a view table fails at load, not at run time
+    with pytest.raises(RecipeError, match=r"pretrain.view1.blur_sigmas"):
+        load_recipe(p)
+    p.write_text("[pretrain.view1]\ncrop_scale = 0.5\n")
+    with pytest.raises(RecipeError, match=r"pretrain.view1.crop_scale must be a list of 2"):
+        load_recipe(p)
     p.write_text("[corpus.intensity]\nscheme = \"fixed\"\n")
     with pytest.raises(RecipeError, match="window"):
         load_recipe(p)

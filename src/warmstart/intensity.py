@@ -24,7 +24,7 @@ from __future__ import annotations
 
 import math
 import warnings
-from dataclasses import asdict, dataclass, field, fields
+from dataclasses import asdict, dataclass, field
 from typing import Any, Mapping
 
 import numpy as np
@@ -126,11 +126,10 @@ class IntensitySettings:
 
     @classmethod
     def from_dict(cls, d: Mapping[str, Any]) -> "IntensitySettings":
-        known = {f.name for f in fields(cls)}
-        unknown = sorted(set(d) - known)
-        if unknown:
-            raise IntensityError(f"unknown intensity settings: {', '.join(unknown)}")
-        return cls(**dict(d))
+        """Build from a mapping, checking keys and types (the recipes' mechanism)."""
+        from .corpus.settings import settings_from_dict  # imported here: corpus.settings imports this module
+
+        return settings_from_dict(cls, d, "intensity")
 
 
 @dataclass(frozen=True)

@@ -251,6 +251,8 @@ def _check_type(value: Any, hint: Any, key: str) -> Any:
             except RecipeError as err:
                 errors.append(err)
         raise errors[0] if errors else RecipeError(f"{key}: bad value {value!r}")
+    if dataclasses.is_dataclass(hint):  # a nested table, e.g. [pretrain.view1]
+        return settings_from_dict(hint, value, key)
     if origin is tuple:
         if not isinstance(value, (list, tuple)) or len(value) != len(args):
             raise RecipeError(f"{key} must be a list of {len(args)} values, got {value!r}")

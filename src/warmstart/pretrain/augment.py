@@ -13,83 +13,14 @@ cut-out.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, fields
-from typing import Any, Mapping
+from dataclasses import dataclass
 
 import torch
 import torch.nn.functional as F
 
+from .settings import ViewSettings
+
 __all__ = ["ViewSettings", "ViewParams", "draw_params", "apply_view", "gaussian_kernels"]
-
-
-@dataclass(frozen=True)
-class ViewSettings:
-    """One view pipeline (a ``[pretrain.views]`` table in a recipe).
-
-    Parameters
-    ----------
-    output_size : int, optional
-        Side of the view in pixels; default the input's.
-    crop_scale : (float, float)
-        Range of the crop's area as a fraction of the patch.
-    crop_ratio : (float, float)
-        Range of the crop's aspect ratio (width / height).
-    flip, rotate90 : bool
-        Random horizontal and vertical flips; random quarter turns (square views only).
-    affine_prob, affine_degrees, affine_scale : float, float, (float, float)
-        Probability of a small rotation (degrees, uniform in +-affine_degrees) and scaling.
-    blur_prob, blur_sigma : float, (float, float)
-        Probability and range of the Gaussian blur sigma (pixels of the view).
-    contrast_prob, contrast, brightness : float, (float, float), float
-        Contrast factor about the patch mean, and an added shift uniform in +-brightness
-        (normalized units).
-    gamma_prob, gamma : float, (float, float)
-        Gamma ``sign(x) |x|^g`` (identity at g = 1), log-uniform in the range.
-    noise_prob, noise_sigma : float, (float, float)
-        Additive Gaussian noise of standard deviation in the range (normalized units).
-    shot_prob, shot_scale : float, (float, float)
-        Signal-dependent (Poisson-like) noise of variance ``scale * max(x, 0)``.
-    cutout_prob, cutout_size : float, (float, float)
-        A rectangle of side fraction in the range set to the patch mean.
-    """
-
-    output_size: int | None = None
-    crop_scale: tuple[float, float] = (0.3, 1.0)
-    crop_ratio: tuple[float, float] = (3 / 4, 4 / 3)
-    flip: bool = True
-    rotate90: bool = True
-    affine_prob: float = 0.0
-    affine_degrees: float = 10.0
-    affine_scale: tuple[float, float] = (0.9, 1.1)
-    blur_prob: float = 0.5
-    blur_sigma: tuple[float, float] = (0.1, 1.5)
-    contrast_prob: float = 0.8
-    contrast: tuple[float, float] = (0.7, 1.3)
-    brightness: float = 0.1
-    gamma_prob: float = 0.3
-    gamma: tuple[float, float] = (0.7, 1.4)
-    noise_prob: float = 0.5
-    noise_sigma: tuple[float, float] = (0.0, 0.05)
-    shot_prob: float = 0.0
-    shot_scale: tuple[float, float] = (0.0, 0.01)
-    cutout_prob: float = 0.0
-    cutout_size: tuple[float, float] = (0.1, 0.3)
-
-    @classmethod
-    def identity(cls, **kw: Any) -> "ViewSettings":
-        """A pipeline that changes nothing (each transform can then be switched on alone)."""
-        base = dict(crop_scale=(1.0, 1.0), crop_ratio=(1.0, 1.0), flip=False, rotate90=False, affine_prob=0.0,
-                    blur_prob=0.0, contrast_prob=0.0, gamma_prob=0.0, noise_prob=0.0, shot_prob=0.0, cutout_prob=0.0)
-        base.update(kw)
-        return cls(**base)
-
-    @classmethod
-    def from_dict(cls, d: Mapping[str, Any]) -> "ViewSettings":
-        known = {f.name for f in fields(cls)}
-        unknown = sorted(set(d) - known)
-        if unknown:
-            raise ValueError(f"unknown view setting {unknown[0]!r} (known: {', '.join(sorted(known))})")
-        return cls(**{k: tuple(v) if isinstance(v, list) else v for k, v in d.items()})
 
 
 @dataclass

@@ -24,7 +24,7 @@ import torch
 from .. import __version__
 from ..errors import PretrainError
 from ..encoders import build_encoder
-from .augment import ViewSettings, apply_view, draw_params
+from .augment import apply_view, draw_params
 from .data import CorpusBatches
 from .methods import build_method
 from .monitors import alignment, embedding_spread, knn_accuracy, load_probe, uniformity
@@ -47,8 +47,8 @@ class PretrainModule(pl.LightningModule):
         self.s = s
         enc = build_encoder(s.encoder, **{"in_channels": in_channels, **s.encoder_params})
         self.method = build_method(s.method, enc, **s.method_params)
-        self.view1 = ViewSettings.from_dict(s.view1)
-        self.view2 = ViewSettings.from_dict(s.view2) if s.view2 is not None else self.view1
+        self.view1 = s.view1
+        self.view2 = s.view2 if s.view2 is not None else s.view1
         self.total_steps = int(total_steps)
         self.spreads: list[float] = []
         self.probe = load_probe(s.probe) if s.probe else None

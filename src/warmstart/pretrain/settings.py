@@ -1,4 +1,7 @@
-"""Settings of the pretraining stage (the ``[pretrain]`` recipe section)."""
+"""Settings of the pretraining stage (the ``[pretrain]`` recipe section and its view tables).
+
+No torch here: recipes are read, and checked to the last key, without it.
+"""
 from __future__ import annotations
 
 import dataclasses
@@ -8,7 +11,73 @@ from typing import Any, Mapping
 from ..corpus.settings import settings_from_dict
 from ..errors import RecipeError
 
-__all__ = ["PretrainSettings"]
+__all__ = ["PretrainSettings", "ViewSettings"]
+
+
+@dataclass(frozen=True)
+class ViewSettings:
+    """One view pipeline (a ``[pretrain.views]`` table in a recipe).
+
+    Parameters
+    ----------
+    output_size : int, optional
+        Side of the view in pixels; default the input's.
+    crop_scale : (float, float)
+        Range of the crop's area as a fraction of the patch.
+    crop_ratio : (float, float)
+        Range of the crop's aspect ratio (width / height).
+    flip, rotate90 : bool
+        Random horizontal and vertical flips; random quarter turns (square views only).
+    affine_prob, affine_degrees, affine_scale : float, float, (float, float)
+        Probability of a small rotation (degrees, uniform in +-affine_degrees) and scaling.
+    blur_prob, blur_sigma : float, (float, float)
+        Probability and range of the Gaussian blur sigma (pixels of the view).
+    contrast_prob, contrast, brightness : float, (float, float), float
+        Contrast factor about the patch mean, and an added shift uniform in +-brightness
+        (normalized units).
+    gamma_prob, gamma : float, (float, float)
+        Gamma ``sign(x) |x|^g`` (identity at g = 1), log-uniform in the range.
+    noise_prob, noise_sigma : float, (float, float)
+        Additive Gaussian noise of standard deviation in the range (normalized units).
+    shot_prob, shot_scale : float, (float, float)
+        Signal-dependent (Poisson-like) noise of variance ``scale * max(x, 0)``.
+    cutout_prob, cutout_size : float, (float, float)
+        A rectangle of side fraction in the range set to the patch mean.
+    """
+
+    output_size: int | None = None
+    crop_scale: tuple[float, float] = (0.3, 1.0)
+    crop_ratio: tuple[float, float] = (3 / 4, 4 / 3)
+    flip: bool = True
+    rotate90: bool = True
+    affine_prob: float = 0.0
+    affine_degrees: float = 10.0
+    affine_scale: tuple[float, float] = (0.9, 1.1)
+    blur_prob: float = 0.5
+    blur_sigma: tuple[float, float] = (0.1, 1.5)
+    contrast_prob: float = 0.8
+    contrast: tuple[float, float] = (0.7, 1.3)
+    brightness: float = 0.1
+    gamma_prob: float = 0.3
+    gamma: tuple[float, float] = (0.7, 1.4)
+    noise_prob: float = 0.5
+    noise_sigma: tuple[float, float] = (0.0, 0.05)
+    shot_prob: float = 0.0
+    shot_scale: tuple[float, float] = (0.0, 0.01)
+    cutout_prob: float = 0.0
+    cutout_size: tuple[float, float] = (0.1, 0.3)
+
+    @classmethod
+    def identity(cls, **kw: Any) -> "ViewSettings":
+        """A pipeline that changes nothing (each transform can then be switched on alone)."""
+        base = dict(crop_scale=(1.0, 1.0), crop_ratio=(1.0, 1.0), flip=False, rotate90=False, affine_prob=0.0,
+                    blur_prob=0.0, contrast_prob=0.0, gamma_prob=0.0, noise_prob=0.0, shot_prob=0.0, cutout_prob=0.0)
+        base.update(kw)
+        return cls(**base)
+
+    @classmethod
+    def from_dict(cls, d: Mapping[str, Any], where: str = "pretrain.view") -> "ViewSettings":
+        return settings_from_dict(cls, d, where)
 
 
 @dataclass(frozen=True)
@@ -24,8 +93,9 @@ class PretrainSettings:
     method : str
         ``simclr``, ``moco_v2`` or ``byol``.
     method_params : dict
-    view1, view2 : dict
-        Augmentation pipelines of the two views (ViewSettings fields); ``view2`` defaults to ``view1``.
+    view1, view2 : ViewSettings
+        Augmentation pipelines of the two views (``[pretrain.view1]`` tables); ``view2`` defaults
+        to ``view1``.
     batch_size, epochs : int
     max_steps : int, optional
         Stop after this many optimizer steps (overrides ``epochs``).
@@ -63,8 +133,8 @@ class PretrainSettings:
     encoder_params: dict[str, Any] = field(default_factory=dict)
     method: str = "simclr"
     method_params: dict[str, Any] = field(default_factory=dict)
-    view1: dict[str, Any] = field(default_factory=dict)
-    view2: dict[str, Any] | None = None
+    view1: ViewSettings = field(default_factory=ViewSettings)
+    view2: ViewSettings | None = None
     batch_size: int = 128
     epochs: int = 10
     max_steps: int | None = None
