@@ -50,7 +50,7 @@ def step(method, opt, v1: torch.Tensor, v2: torch.Tensor) -> float:
     opt.zero_grad(set_to_none=True)
     loss.backward()
     opt.step()
-    return float(loss)
+    return float(loss.detach())
 
 
 def timed(it, method, opt, steps: int, warmup: int = 2) -> float:

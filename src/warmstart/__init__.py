@@ -23,6 +23,14 @@ _LAZY = {
     "open_corpus": "warmstart.corpus.store",
     "write_report": "warmstart.corpus.report",
     "load_recipe": "warmstart.recipe",
+    "pretrain": "warmstart.pretrain.loop",
+    "export_encoder": "warmstart.export.pack",
+    "read_manifest": "warmstart.export.file",
+    "load_encoder": "warmstart.export.load",
+    "warm_start": "warmstart.export.load",
+    "WarmStartReport": "warmstart.export.load",
+    "prepare": "warmstart.export.prepare",
+    "UNet": "warmstart.unet",
 }
 
 __all__ = ["__version__", *_LAZY]

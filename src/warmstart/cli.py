@@ -99,6 +99,24 @@ def build_parser() -> argparse.ArgumentParser:
     pre.add_argument("--resume", action="store_true", help="continue the run in RUN from its last checkpoint")
     pre.add_argument("--json", action="store_true")
 
+    exp = sub.add_parser("export", help="write a run's encoder to one safetensors file with its manifest",
+                         description="Write the encoder of the pretraining run RUN, with the corpus's intensity rule, "
+                                     "standardization, corpus and training summary, to FILE (safetensors: no code runs "
+                                     "when it is loaded).")
+    exp.add_argument("run", metavar="RUN")
+    exp.add_argument("-o", "--output", required=True, metavar="FILE", help="encoder file (e.g. encoder.safetensors)")
+    exp.add_argument("--weights", choices=["auto", "online", "momentum"], default="auto",
+                     help="momentum (EMA) copy of MoCo / BYOL, or the online one; auto: momentum where there is one")
+    exp.add_argument("--checkpoint", metavar="CKPT", help="a checkpoint other than checkpoints/last.ckpt")
+    exp.add_argument("--json", action="store_true")
+
+    ins = sub.add_parser("inspect", help="summarize an encoder file (and write its model card)",
+                         description="Print what an encoder file holds: encoder, input contract, corpus and training.")
+    ins.add_argument("file", metavar="FILE")
+    ins.add_argument("--json", action="store_true", help="print the whole manifest as JSON")
+    ins.add_argument("--card", metavar="MD", help="write a Markdown model card to MD")
+    ins.add_argument("--verify", action="store_true", help="also check the tensors against the manifest's sha256")
+
     demo = sub.add_parser("demo", help="generate a demo archive and run the pipeline on it",
                           description="Write a ceramics lab's archive of sintered-filter scans (mixed formats, bit depths "
                                       "and scanners), then scan it and build a corpus. Rerunning with --out reuses "
@@ -281,6 +299,47 @@ def cmd_pretrain(args: argparse.Namespace) -> int:
     return 0
 
 
+def cmd_export(args: argparse.Namespace) -> int:
+    try:
+        from .export.pack import export_encoder  # imports torch to read the checkpoint
+    except ImportError as err:
+        print(f"warmstart: error: export needs torch ({err}); install it with: pip install 'warmstart[train]'", file=sys.stderr)
+        return EXIT_ERROR
+    path, m = export_encoder(args.run, args.output, weights=args.weights, checkpoint=args.checkpoint)
+    if args.json:
+        _print_json({"path": str(path), "manifest": m})
+    else:
+        from .export.card import summary_text
+
+        print(f"{path}: {m['tensors']['count']} tensors, {path.stat().st_size / 1e6:.1f} MB")
+        print(summary_text(m))
+    if m["corpus"].get("clinical"):
+        print(CLINICAL_CAUTION, file=sys.stderr)
+    return 0
+
+
+def cmd_inspect(args: argparse.Namespace) -> int:
+    from pathlib import Path
+
+    from .export.card import model_card, summary_text
+    from .export.file import read_encoder_file, read_manifest
+
+    m = read_encoder_file(args.file)[0] if args.verify else read_manifest(args.file)
+    if args.card:
+        Path(args.card).write_text(model_card(m, Path(args.file).stem))
+    if args.json:
+        _print_json(m)
+    else:
+        print(summary_text(m))
+        if args.verify:
+            print("tensors     verified against the manifest's sha256")
+        if args.card:
+            print(f"model card: {args.card}")
+    if m["corpus"].get("clinical"):
+        print(CLINICAL_CAUTION, file=sys.stderr)
+    return 0
+
+
 def cmd_demo(args: argparse.Namespace) -> int:
     from .demo.run import run_demo
 
@@ -304,7 +363,8 @@ def main(argv: Sequence[str] | None = None) -> int:
         for name in ("pytorch_lightning", "lightning_fabric", "lightning.pytorch"):
             logging.getLogger(name).setLevel(logging.WARNING)
 
-    handlers = {"scan": cmd_scan, "demo": cmd_demo, "pretrain": cmd_pretrain, ("corpus", "build"): cmd_corpus_build, ("corpus", "show"): cmd_corpus_show,
+    handlers = {"scan": cmd_scan, "demo": cmd_demo, "pretrain": cmd_pretrain, "export": cmd_export,
+                "inspect": cmd_inspect, ("corpus", "build"): cmd_corpus_build, ("corpus", "show"): cmd_corpus_show,
                 ("corpus", "merge"): cmd_corpus_merge}
     key = (args.command, args.corpus_command) if args.command == "corpus" else args.command
     try:

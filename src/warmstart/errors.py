@@ -15,6 +15,9 @@ __all__ = [
     "RecipeError",
     "CorpusError",
     "PretrainError",
+    "ExportError",
+    "WarmStartError",
+    "DataMismatchWarning",
 ]
 
 
@@ -48,3 +51,16 @@ class CorpusError(WarmstartError, ValueError):
 
 class PretrainError(WarmstartError, RuntimeError):
     """Pretraining cannot go on (non-finite loss, missing checkpoint to resume, ...)."""
+
+
+class ExportError(WarmstartError, ValueError):
+    """An encoder file cannot be written, or one that is read is damaged, tampered with or of an
+    unknown version."""
+
+
+class WarmStartError(WarmstartError, ValueError):
+    """An encoder file's weights do not fit the network they are asked to warm-start."""
+
+
+class DataMismatchWarning(UserWarning):
+    """New data, once prepared, does not look like the corpus the encoder was trained on."""

@@ -38,6 +38,8 @@ class ResNetEncoder(nn.Module):
         Registry name recorded in the spec.
     """
 
+    first_conv = "conv1"  # the module whose weight sees the input channels
+
     def __init__(self, block: type, layers: Sequence[int], widths: Sequence[int], in_channels: int = 1,
                  name: str = "resnet", params: dict | None = None) -> None:
         super().__init__()

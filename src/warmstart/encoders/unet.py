@@ -65,6 +65,8 @@ class UNetEncoder(nn.Module):
     [(2, 4, 16, 16), (2, 8, 8, 8), (2, 16, 4, 4)]
     """
 
+    first_conv = "levels.0.conv1"  # the module whose weight sees the input channels
+
     def __init__(self, in_channels: int = 1, base_width: int = 32, depth: int = 5, norm: str = "batch") -> None:
         super().__init__()
         if depth < 1 or base_width < 1 or in_channels < 1:

@@ -40,7 +40,8 @@ def _step_seed(seed: int, step: int, rank: int) -> int:
 class PretrainModule(pl.LightningModule):
     """A method around an encoder, trained on two batched views of each corpus batch."""
 
-    def __init__(self, settings: dict[str, Any], in_channels: int, total_steps: int) -> None:
+    def __init__(self, settings: dict[str, Any], in_channels: int, total_steps: int,
+                 standardization: tuple[float, float] = (0.0, 1.0)) -> None:
         super().__init__()
         self.save_hyperparameters()
         s = PretrainSettings.from_dict(settings)
@@ -50,6 +51,8 @@ class PretrainModule(pl.LightningModule):
         self.view1 = s.view1
         self.view2 = s.view2 if s.view2 is not None else s.view1
         self.total_steps = int(total_steps)
+        # The encoder sees (normalized - mean) / std; the export records (mean, std).
+        self.standardization = (float(standardization[0]), float(standardization[1]))
         self.spreads: list[float] = []
         self.probe = load_probe(s.probe) if s.probe else None
         self.knn_history: list[float] = []
@@ -63,6 +66,7 @@ class PretrainModule(pl.LightningModule):
         with torch.autocast(device_type=batch.device.type, enabled=False):
             x1 = apply_view(batch.float(), draw_params(b, size, self.view1, g, batch.device), g)
             x2 = apply_view(batch.float(), draw_params(b, size, self.view2, g, batch.device), g)
+            x1, x2 = self.standardized(x1), self.standardized(x2)
         loss, out = self.method.loss(x1, x2)
         if not bool(torch.isfinite(loss)):
             raise PretrainError(
@@ -77,6 +81,10 @@ class PretrainModule(pl.LightningModule):
                       on_step=True, on_epoch=False, prog_bar=False, batch_size=b)
         self.log("loss_bar", loss.detach(), prog_bar=True, logger=False, batch_size=b)
         return loss
+
+    def standardized(self, x: torch.Tensor) -> torch.Tensor:
+        mean, std = self.standardization
+        return (x - mean) / std if (mean, std) != (0.0, 1.0) else x
 
     def on_save_checkpoint(self, checkpoint: dict[str, Any]) -> None:
         checkpoint["method_state"] = self.method.extra_state()
@@ -105,7 +113,7 @@ class PretrainModule(pl.LightningModule):
             was = self.method.encoder.training
             self.method.encoder.eval()
             with torch.no_grad():
-                emb = torch.cat([self.method.embed(x[i:i + 256].to(self.device)).cpu() for i in range(0, len(x), 256)])
+                emb = torch.cat([self.method.embed(self.standardized(x[i:i + 256].to(self.device))).cpu() for i in range(0, len(x), 256)])
             self.method.encoder.train(was)
             acc = knn_accuracy(emb, y)
             self.knn_history.append(acc)
@@ -238,7 +246,9 @@ def pretrain(corpus: str | os.PathLike[str], out: str | os.PathLike[str], settin
     position.steps_per_epoch = steps_per_epoch
     channels = int(store.patches.shape[1])
     (out / "recipe.json").write_text(json.dumps({"pretrain": s.to_dict(), "corpus": str(store.path)}, indent=1))
-    module = PretrainModule(s.to_dict(), channels, total)
+    # The corpus manifest travels with the run, so an export works after the corpus has moved.
+    (out / "corpus-manifest.json").write_text(json.dumps(store.manifest, indent=1))
+    module = PretrainModule(s.to_dict(), channels, total, _standardization(store.manifest, s))
     if resume:
         # Lightning makes the data iterator of the resumed epoch before any epoch hook runs, so
         # the dataset learns its position from the checkpoint here.
@@ -270,6 +280,14 @@ def pretrain(corpus: str | os.PathLike[str], out: str | os.PathLike[str], settin
     if trainer.is_global_zero:
         (out / "summary.json").write_text(json.dumps(summary, indent=1))
     return PretrainResult(out, int(trainer.global_step), summary["final_loss"], summary)
+
+
+def _standardization(manifest: dict[str, Any], s: PretrainSettings) -> tuple[float, float]:
+    """(mean, std) of the corpus's stored values, or (0, 1) when ``standardize`` is off."""
+    stats = manifest.get("statistics", {})
+    if not s.standardize or not stats.get("std"):
+        return (0.0, 1.0)
+    return (float(stats["mean"]), float(stats["std"]))
 
 
 def _loggers(out: Path) -> list[Any]:

@@ -124,6 +124,10 @@ class PretrainSettings:
         spread over the sphere, 0 when all are equal).
     source_weights : dict
         Source name -> share of every epoch.
+    standardize : bool
+        Feed the encoder ``(normalized - mean) / std`` with the corpus's mean and std (after the
+        views are drawn). The export records the two numbers, and ``prepare`` applies them to new
+        data, so downstream inputs match what the encoder saw.
     probe : str, optional
         A labelled probe set (``.npz`` with ``patches`` and integer ``labels``); its leave-one-out
         kNN accuracy on the encoder's embeddings is logged after every epoch (``knn`` in history).
@@ -155,6 +159,7 @@ class PretrainSettings:
     collapse_threshold: float = 0.1
     source_weights: dict[str, Any] = field(default_factory=dict)
     probe: str | None = None
+    standardize: bool = True
 
     def __post_init__(self) -> None:
         for name in ("batch_size", "epochs", "checkpoint_every", "num_nodes"):

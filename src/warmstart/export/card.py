@@ -1,0 +1,118 @@
+"""Human-readable views of an encoder manifest: a terminal summary and a Markdown model card."""
+from __future__ import annotations
+
+from typing import Any, Mapping
+
+__all__ = ["summary_text", "model_card", "CLINICAL_CAUTION"]
+
+CLINICAL_CAUTION = ("For research use only; not for diagnosis or treatment. Any clinical use is subject to local "
+                    "regulation and must be overseen by qualified practitioners.")
+
+
+def _fmt(x: Any, digits: int = 4) -> str:
+    return "n/a" if x is None else (f"{x:.{digits}g}" if isinstance(x, float) else str(x))
+
+
+def _intensity_line(m: Mapping[str, Any]) -> str:
+    rule = m["intensity"]["rule"]
+    scheme = rule["scheme"]
+    if scheme == "percentile":
+        what = f"percentiles {rule['percentiles'][0]:g} / {rule['percentiles'][1]:g} -> {rule['targets'][0]:g} / {rule['targets'][1]:g}"
+    elif scheme == "zscore":
+        what = f"z-score ({rule['zscore_method']})"
+    elif scheme == "two_point":
+        refs = rule.get("reference_values")
+        what = (f"two-point: raw {refs[0]:g} / {refs[1]:g}" if refs else "two-point: the two main histogram modes") \
+            + f" -> {rule['targets'][0]:g} / {rule['targets'][1]:g}"
+    else:
+        what = f"fixed window {rule['window'][0]:g} .. {rule['window'][1]:g} {rule.get('unit') or ''} -> {rule['targets'][0]:g} / {rule['targets'][1]:g}"
+    how = "one fixed reference for all data" if m["intensity"]["fit"] == "fixed" else "fitted on each new volume"
+    return f"{what} ({how})"
+
+
+def summary_text(m: Mapping[str, Any]) -> str:
+    """A few lines on what an encoder file holds (``warmstart inspect``)."""
+    e, c, t, v = m["encoder"], m["corpus"], m["training"], m["voxel_size_um"]
+    st = m["standardization"]
+    params = ", ".join(f"{k}={val}" for k, val in e["spec"]["params"].items())
+    stages = " ".join(f"{s['channels']}@{s['stride']}" for s in e["spec"]["stages"])
+    rng = v.get("patch_range")
+    lines = [
+        f"encoder     {e['spec']['name']} ({params}); {m['tensors']['parameters']:,} parameters; {e['weights']} weights",
+        f"stages      {stages}  (channels@stride)",
+        f"input       {m['input']['channels']} channel(s), patches of {m['input']['patch_size']} px, "
+        f"voxel size {('%.4g-%.4g um' % tuple(rng)) if rng else 'unknown'}",
+        f"intensity   {_intensity_line(m)}",
+        f"standardize (x - {st['mean']:.5g}) / {st['std']:.5g}",
+        f"corpus      {c['sources']} sources ({', '.join(f'{k} {n}' for k, n in sorted(c['formats'].items()))}), "
+        f"{c['patches']:,} patches; modalities: {', '.join(c['modalities']) or 'n/a'}",
+        f"training    {t['method']}, {t['steps']} of {t['planned_steps']} steps"
+        f"{'' if t['finished'] else ' (run not finished)'}; final loss {_fmt(t['final_loss'])}, "
+        f"embedding spread {_fmt(t['final_spread'], 3)}, kNN {_fmt(t['knn_accuracy'], 3)}, {_fmt(t['seconds'])} s",
+        f"tensors     {m['tensors']['count']}, sha256 {m['tensors']['sha256'][:16]}...",
+        f"written by  warmstart {m['warmstart_version']} on {m['created']}",
+    ]
+    if c.get("clinical"):
+        lines.append(f"caution     clinical data: {CLINICAL_CAUTION}")
+    return "\n".join(lines)
+
+
+def model_card(m: Mapping[str, Any], title: str = "Encoder") -> str:
+    """A Markdown model card: what the encoder was trained on, how to feed it, intended use,
+    limitations (and the caution for clinical data)."""
+    e, c, t, v = m["encoder"], m["corpus"], m["training"], m["voxel_size_um"]
+    st = m["standardization"]
+    rng = v.get("patch_range")
+    src = v.get("source_range")
+    prov = "\n".join(f"| {p['name']} | `{p['sha256'][:16]}` | {p['hash_kind']} |" for p in c["provenance"][:50])
+    more = f"\n\n({len(c['provenance']) - 50} more sources in the manifest)" if len(c["provenance"]) > 50 else ""
+    clinical = c.get("clinical") or any("CT" == mod or "MR" == mod for mod in c["modalities"])
+    caution = f"\n\n**Caution.** {CLINICAL_CAUTION}" if clinical else \
+        "\n\nResearch use. If you apply it to clinical data: " + CLINICAL_CAUTION
+    return f"""# {title}: {e['spec']['name']} pretrained with {t['method']}
+
+A self-supervised image encoder trained by warmstart {m['warmstart_version']} on a facility's own
+unlabeled images, meant as the warm start of a segmentation network (U-Net encoder).
+
+## What it is
+
+- Architecture: `{e['spec']['name']}` with {e['spec']['params']}; {m['tensors']['parameters']:,} parameters
+  ({e['weights']} weights); feature maps (channels@stride): {', '.join(f"{s['channels']}@{s['stride']}" for s in e['spec']['stages'])}
+- File integrity: sha256 of the tensors `{m['tensors']['sha256']}`
+
+## What it was trained on
+
+- {c['sources']} volumes ({', '.join(f'{k}: {n}' for k, n in sorted(c['formats'].items()))}); modalities: {', '.join(c['modalities']) or 'n/a'}
+- {c['patches']:,} patches of {m['input']['patch_size']} px, {m['input']['channels']} channel(s), cut along {m['input']['axes']}
+- Source voxel sizes {('%.4g-%.4g um' % tuple(src)) if src else 'unknown'}; patch voxel sizes {('%.4g-%.4g um' % tuple(rng)) if rng else 'unknown'}
+- Training: {t['method']}, {t['steps']} steps (batch {t['batch_size']}, lr {t['lr']}), final loss {_fmt(t['final_loss'])},
+  embedding spread {_fmt(t['final_spread'], 3)}, kNN accuracy {_fmt(t['knn_accuracy'], 3)}, {_fmt(t['seconds'])} s;
+  {'finished' if t['finished'] else 'NOT finished: the file holds an intermediate state'}
+
+## How to feed it
+
+1. Intensity rule: {_intensity_line(m)}.
+2. Standardization: `(x - {st['mean']:.6g}) / {st['std']:.6g}`.
+3. Voxel size near the patches' (see above), {m['input']['channels']} input channel(s).
+
+`warmstart.prepare(array, file)` does 1 and 2 and warns when the result does not look like the corpus.
+
+## Intended use
+
+Initialization of the encoder of a segmentation network for images like the corpus's (same kind of
+instrument, material and voxel size), fine-tuned on labelled data. Check the gain on your own
+labelled data (`warmstart bench`) before relying on it.
+
+## Limitations
+
+- Features were learned on {', '.join(c['modalities']) or 'the corpus'} data only; other modalities, materials or voxel
+  sizes may transfer poorly.
+- A self-supervised loss says little about segmentation quality; only a labelled benchmark does.
+- 2-D encoder: 3-D context enters only through {m['input']['channels']} adjacent slice(s).{caution}
+
+## Provenance
+
+| source | sha256 | hashed |
+|---|---|---|
+{prov}{more}
+"""

@@ -1,0 +1,131 @@
+"""The encoder file: tensors in safetensors, the manifest as JSON in the safetensors metadata.
+
+safetensors holds only raw tensors and a string-to-string metadata table, so loading a shared
+file can never run code (unlike a pickle). The manifest sits under one metadata key, and the
+manifest records a sha256 of the tensors so that a damaged or altered file is refused. Reading
+needs numpy only: ``warmstart inspect`` and :func:`warmstart.prepare` never import torch.
+"""
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+from pathlib import Path
+from typing import Any, Mapping
+
+import numpy as np
+
+from ..errors import ExportError
+
+__all__ = ["METADATA_KEY", "tensor_digest", "write_encoder_file", "read_encoder_file", "read_manifest"]
+
+METADATA_KEY = "warmstart.manifest"
+
+
+def _contiguous(a: np.ndarray) -> np.ndarray:
+    """C-contiguous, keeping 0-d arrays 0-d (``np.ascontiguousarray`` makes them 1-d)."""
+    a = np.asarray(a)
+    return a if a.flags.c_contiguous else a.copy(order="C")
+
+
+def tensor_digest(arrays: Mapping[str, np.ndarray]) -> str:
+    """sha256 over the tensors in name order: name, dtype, shape and raw bytes of each.
+
+    Examples
+    --------
+    >>> a = {"w": np.zeros((2, 2), np.float32)}
+    >>> tensor_digest(a) == tensor_digest({"w": np.zeros((2, 2), np.float32)})
+    True
+    >>> tensor_digest(a) == tensor_digest({"w": np.ones((2, 2), np.float32)})
+    False
+    """
+    h = hashlib.sha256()
+    for name in sorted(arrays):
+        a = _contiguous(arrays[name])
+        h.update(json.dumps([name, a.dtype.str, list(a.shape)]).encode())
+        h.update(memoryview(a).cast("B"))
+    return h.hexdigest()
+
+
+def write_encoder_file(path: str | os.PathLike[str], arrays: Mapping[str, np.ndarray], manifest: Mapping[str, Any]) -> Path:
+    """Write tensors and manifest atomically (a temporary file renamed into place), so an
+    interrupted export never leaves a half-written file under the final name.
+
+    The manifest's ``tensors`` entry (count and sha256) is filled in here.
+    """
+    from safetensors.numpy import save_file
+
+    path = Path(path)
+    arrays = {k: _contiguous(v) for k, v in arrays.items()}
+    full = dict(manifest)
+    full["tensors"] = {"count": len(arrays), "sha256": tensor_digest(arrays),
+                       "parameters": int(sum(a.size for k, a in arrays.items() if not k.endswith("num_batches_tracked")))}
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_name(f".{path.name}.partial")
+    save_file(arrays, str(tmp), metadata={METADATA_KEY: json.dumps(full)})
+    os.replace(tmp, path)
+    return path
+
+
+def read_manifest(path: str | os.PathLike[str]) -> dict[str, Any]:
+    """The manifest of an encoder file (its header only; no tensor is read or checked)."""
+    from .manifest import check_manifest
+
+    meta = _open(path, lambda f: f.metadata())
+    return check_manifest(_parse(meta, path), path)
+
+
+def read_encoder_file(path: str | os.PathLike[str], verify: bool = True) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
+    """Manifest and tensors of an encoder file.
+
+    Parameters
+    ----------
+    path : path
+    verify : bool
+        Recompute the tensors' sha256 and refuse the file when it differs from the manifest's.
+
+    Raises
+    ------
+    ExportError
+        Not a readable safetensors file, no or an unknown manifest, or tensors that do not match
+        the recorded hash (the file was damaged or altered).
+    """
+    from .manifest import check_manifest
+
+    def both(f: Any) -> tuple[Any, dict[str, np.ndarray]]:
+        return f.metadata(), {k: f.get_tensor(k) for k in f.keys()}
+
+    meta, arrays = _open(path, both)
+    manifest = check_manifest(_parse(meta, path), path)
+    if verify:
+        want = manifest["tensors"]["sha256"]
+        got = tensor_digest(arrays)
+        if got != want:
+            raise ExportError(f"{path}: the tensors do not match the sha256 in the file's manifest "
+                              f"({got[:12]}... instead of {want[:12]}...): the file was damaged or altered; "
+                              "refusing to load it")
+    return manifest, arrays
+
+
+def _open(path: str | os.PathLike[str], fn: Any) -> Any:
+    from safetensors import safe_open
+
+    if not Path(path).is_file():
+        raise ExportError(f"{path}: no such encoder file")
+    try:
+        with safe_open(str(path), framework="np") as f:
+            return fn(f)
+    except ExportError:
+        raise
+    except Exception as e:  # safetensors raises its own error types for damaged headers
+        raise ExportError(f"{path}: not a readable safetensors encoder file ({e})") from e
+
+
+def _parse(meta: Mapping[str, str] | None, path: str | os.PathLike[str]) -> dict[str, Any]:
+    if not meta or METADATA_KEY not in meta:
+        raise ExportError(f"{path}: a safetensors file without a warmstart manifest (metadata key {METADATA_KEY!r}); "
+                          "it was not written by warmstart export")
+    try:
+        return json.loads(meta[METADATA_KEY])
+    except json.JSONDecodeError as e:
+        raise ExportError(f"{path}: the manifest is not valid JSON ({e})") from e

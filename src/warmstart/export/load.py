@@ -1,0 +1,257 @@
+"""Loading an encoder file: rebuild our encoder, or warm-start someone else's network."""
+from __future__ import annotations
+
+import math
+import os
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from ..errors import ExportError, WarmStartError
+from .file import read_encoder_file
+from .layouts import LAYOUTS, Layout, family
+
+__all__ = ["load_encoder", "warm_start", "WarmStartReport", "adapt_input_channels"]
+
+
+def load_encoder(file: str | os.PathLike[str], device: str = "cpu") -> Any:
+    """Rebuild the encoder of a file with its weights.
+
+    Parameters
+    ----------
+    file : path
+        An encoder file written by ``warmstart export``.
+    device : str
+        Where to put the weights.
+
+    Returns
+    -------
+    torch.nn.Module
+        ``forward(x)`` returns the stage feature maps; ``.spec`` is its EncoderSpec and
+        ``.manifest`` the file's manifest. The module is in training mode, as for fine-tuning.
+
+    Raises
+    ------
+    ExportError
+        Bad hash, unknown manifest version, missing or extra tensors, or wrong shapes (the
+        message names them).
+    """
+    import torch
+
+    from ..encoders import encoder_from_spec
+
+    manifest, arrays = read_encoder_file(file)
+    try:
+        enc = encoder_from_spec(manifest["encoder"]["spec"])
+    except ValueError as e:
+        raise ExportError(f"{file}: the manifest's encoder cannot be built: {e}") from e
+    want = {k: tuple(v.shape) for k, v in enc.state_dict().items()}
+    missing = sorted(set(want) - set(arrays))
+    extra = sorted(set(arrays) - set(want))
+    wrong = [f"{k} {tuple(arrays[k].shape)} (expected {want[k]})" for k in sorted(set(want) & set(arrays))
+             if tuple(arrays[k].shape) != want[k]]
+    problems = ([f"missing tensors: {', '.join(missing[:5])}{' ...' if len(missing) > 5 else ''}"] if missing else []) + \
+               ([f"unexpected tensors: {', '.join(extra[:5])}{' ...' if len(extra) > 5 else ''}"] if extra else []) + \
+               ([f"wrong shapes: {', '.join(wrong[:5])}"] if wrong else [])
+    if problems:
+        raise ExportError(f"{file}: the tensors do not fit encoder {manifest['encoder']['spec']['name']!r}: " + "; ".join(problems))
+    enc.load_state_dict({k: torch.from_numpy(np.array(v)) for k, v in arrays.items()}, strict=True)
+    enc.manifest = manifest
+    return enc.to(device)
+
+
+def adapt_input_channels(weight: Any, channels: int) -> Any:
+    """Adapt a first-convolution weight (O, I, kH, kW) to ``channels`` input channels.
+
+    The rule the common libraries use (timm's ``adapt_input_conv``, segmentation_models_pytorch's
+    ``patch_first_conv``): to one channel, sum the kernels over the input channels (a grayscale
+    image fed as I equal channels gives the same response); to k channels, repeat the I kernels
+    cyclically, keep the first k, and scale by I / k (so an image repeated over the k channels
+    gives the same response as over the I channels).
+    """
+    o, i = weight.shape[:2]
+    if channels == i:
+        return weight.clone()
+    dtype = weight.dtype
+    w = weight.float()
+    if channels == 1:
+        w = w.sum(dim=1, keepdim=True)
+    else:
+        w = w.repeat(1, math.ceil(channels / i), 1, 1)[:, :channels] * (i / channels)
+    return w.to(dtype)
+
+
+@dataclass
+class WarmStartReport:
+    """What :func:`warm_start` did.
+
+    Attributes
+    ----------
+    file, layout : str
+    loaded : list of str
+        Target keys filled from the file.
+    missing : list of str
+        Target keys of the encoder part that the file had nothing for.
+    unexpected : list of str
+        Our tensors with no place in the target.
+    mismatched : list of (str, tuple, tuple)
+        Target key, our shape, the target's shape.
+    adapted : list of str
+        First-convolution weights adapted to another channel count (see :func:`adapt_input_channels`).
+    zero_filled : list of str
+        Target convolution biases set to zero because our convolution has none (exactly
+        equivalent: the biases were absent in training).
+    untouched : int
+        Target keys outside the encoder part (decoder, head), left as they were.
+    applied : bool
+        Whether anything was copied (not when ``strict`` refused).
+    """
+
+    file: str
+    layout: str
+    loaded: list[str] = field(default_factory=list)
+    missing: list[str] = field(default_factory=list)
+    unexpected: list[str] = field(default_factory=list)
+    mismatched: list[tuple[str, tuple[int, ...], tuple[int, ...]]] = field(default_factory=list)
+    adapted: list[str] = field(default_factory=list)
+    zero_filled: list[str] = field(default_factory=list)
+    untouched: int = 0
+    applied: bool = False
+    hint: str = ""
+
+    @property
+    def complete(self) -> bool:
+        """Every tensor placed and every encoder key of the target filled."""
+        return not (self.missing or self.unexpected or self.mismatched)
+
+    def __str__(self) -> str:
+        def few(xs: list[Any]) -> str:
+            return ", ".join(str(x) for x in xs[:4]) + (f" ... ({len(xs)} in all)" if len(xs) > 4 else "")
+
+        lines = [f"warm start from {self.file} (layout {self.layout}): {len(self.loaded)} tensors loaded"
+                 + ("" if self.applied else " - NOT applied")]
+        if self.adapted:
+            lines.append(f"  input channels adapted: {few(self.adapted)}")
+        if self.zero_filled:
+            lines.append(f"  biases set to zero: {few(self.zero_filled)}")
+        if self.mismatched:
+            lines.append("  shape mismatches: " + few([f"{k} ours {a} theirs {b}" for k, a, b in self.mismatched]))
+        if self.missing:
+            lines.append(f"  encoder keys of the network with nothing in the file: {few(self.missing)}")
+        if self.unexpected:
+            lines.append(f"  tensors of the file with no place in the network: {few(self.unexpected)}")
+        lines.append(f"  {self.untouched} keys outside the encoder left as they were")
+        if self.hint and not self.complete:
+            lines.append(f"  hint: {self.hint}")
+        return "\n".join(lines)
+
+
+def _plan(layout: Layout, ours: dict[str, Any], theirs: dict[str, Any], first_conv: str, file: str) -> WarmStartReport:
+    import torch
+
+    rep = WarmStartReport(str(file), layout.name)
+    rep._copy = {}  # type: ignore[attr-defined]
+    first = first_conv + ".weight"
+    for k, v in ours.items():
+        tk = layout.map_key(k)
+        if tk is None or tk not in theirs:
+            rep.unexpected.append(k)
+            continue
+        t = theirs[tk]
+        src = torch.as_tensor(v)
+        if tuple(src.shape) != tuple(t.shape):
+            if k == first and src.ndim == 4 and src.shape[0] == t.shape[0] and src.shape[2:] == t.shape[2:]:
+                src = adapt_input_channels(src, int(t.shape[1]))
+                rep.adapted.append(f"{tk} {int(v.shape[1])} -> {int(t.shape[1])} channels")
+            else:
+                rep.mismatched.append((tk, tuple(src.shape), tuple(t.shape)))
+                continue
+        rep._copy[tk] = src.to(t.dtype)  # type: ignore[attr-defined]
+        rep.loaded.append(tk)
+    region = [k for k in theirs if layout.in_encoder(k)]
+    loaded = set(rep.loaded)
+    for k in region:
+        if k in loaded:
+            continue
+        if k.endswith(".bias") and k[:-5] + ".weight" in loaded and theirs[k].ndim == 1 \
+                and theirs[k[:-5] + ".weight"].ndim == 4:
+            rep._copy[k] = torch.zeros_like(theirs[k])  # type: ignore[attr-defined]
+            rep.zero_filled.append(k)
+        elif k not in {m[0] for m in rep.mismatched}:
+            rep.missing.append(k)
+    rep.untouched = len(theirs) - len(region)
+    rep.hint = layout.hint
+    return rep
+
+
+def _library(model: Any) -> str:
+    return type(model).__module__.split(".")[0]
+
+
+def _choose(model: Any, ours: dict[str, Any], theirs: dict[str, Any], fam: str, first_conv: str, file: str,
+            layout: str) -> WarmStartReport:
+    if layout != "auto":
+        if layout not in LAYOUTS:
+            raise WarmStartError(f"unknown layout {layout!r}; known: auto, {', '.join(LAYOUTS)}")
+        if fam not in LAYOUTS[layout].families:
+            raise WarmStartError(f"{file}: layout {layout!r} takes {'/'.join(LAYOUTS[layout].families)} encoders, "
+                                 f"the file holds a {fam} encoder")
+        return _plan(LAYOUTS[layout], ours, theirs, first_conv, file)
+    lib = _library(model)
+    cands = [L for L in LAYOUTS.values() if fam in L.families]
+    plans = [_plan(L, ours, theirs, first_conv, file) for L in cands]
+    # The layout whose key names find the most places (shape mismatches included: they are the
+    # user's to see in the report), less the network's encoder keys it leaves empty; among equals,
+    # the one written for the network's own library, then the first listed.
+    def named(p: WarmStartReport) -> int:
+        return len(p.loaded) + len(p.mismatched)
+
+    best = max(range(len(plans)), key=lambda i: (named(plans[i]) - len(plans[i].missing), cands[i].library == lib, -i))
+    if not named(plans[best]):
+        sample = ", ".join(list(theirs)[:3])
+        raise WarmStartError(f"{file}: no layout places any of its {len(ours)} tensors in {type(model).__name__} "
+                             f"(its keys look like {sample}); pass layout= one of {', '.join(LAYOUTS)}")
+    return plans[best]
+
+
+def warm_start(model: Any, file: str | os.PathLike[str], layout: str = "auto", strict: bool = True) -> WarmStartReport:
+    """Copy an encoder file's weights into a network.
+
+    Parameters
+    ----------
+    model : torch.nn.Module
+        The network to warm-start (its other parts are left as they are).
+    file : path
+        An encoder file written by ``warmstart export``.
+    layout : str
+        ``auto`` (from the network's key names and shapes), or one of
+        :data:`warmstart.export.layouts.LAYOUTS`.
+    strict : bool
+        Refuse (and copy nothing) unless every tensor finds its place and every key of the
+        network's encoder part is filled. With ``False``, copy what fits and report the rest.
+
+    Returns
+    -------
+    WarmStartReport
+
+    Raises
+    ------
+    WarmStartError
+        ``strict`` and the file does not fit (the message is the report), or no layout fits.
+    ExportError
+        The file is damaged, altered or of an unknown version.
+    """
+    import torch
+
+    manifest, ours = read_encoder_file(file)
+    fam = family(manifest["encoder"]["spec"]["name"])
+    theirs = model.state_dict()
+    rep = _choose(model, ours, theirs, fam, manifest["encoder"]["first_conv"], str(file), layout)
+    copy = rep.__dict__.pop("_copy")
+    if strict and not rep.complete:
+        raise WarmStartError(f"{rep}\n(strict: nothing was copied; pass strict=False to load what fits)")
+    with torch.no_grad():
+        model.load_state_dict(copy, strict=False)
+    rep.applied = True
+    return rep

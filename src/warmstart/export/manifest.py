@@ -1,0 +1,182 @@
+"""The manifest of an encoder file: what the encoder is, what it was trained on, and how new
+data must be prepared for it (no torch needed).
+
+Version 1 fields
+----------------
+``format``, ``version``, ``created``, ``warmstart_version``
+``encoder``
+    EncoderSpec dict, ``first_conv`` (the module whose weight sees the input channels) and
+    ``weights`` (``online`` or ``momentum``: which copy of the network the file holds).
+``input``
+    ``channels`` (1, or k adjacent slices for 2.5-D), ``patch_size`` in pixels, ``axes`` sliced.
+``intensity``
+    ``rule`` (IntensitySettings dict); ``fit`` = ``per_volume`` (fit the rule on each new volume,
+    as every corpus source was) or ``fixed`` (one reference for all data: a physical scale or
+    given two-point values), then ``reference`` (IntensityReference dict) for ``fixed``.
+``standardization``
+    ``mean``, ``std``: the encoder's input is ``(normalized - mean) / std``.
+``corpus_values``
+    Percentiles of the corpus's normalized values (before standardization), for mismatch checks.
+``voxel_size_um``
+    In-plane voxel sizes (micrometres) of the sources and of the patches after resampling.
+``corpus``
+    Sources, formats, modalities, counts, clinical flag and provenance hashes.
+``training``
+    Method, steps, epochs, final loss, embedding spread, kNN accuracy, seconds, library versions.
+``timm``
+    A timm-style pretrained configuration (ResNet-18/34/50 only), or null.
+``tensors``
+    ``count``, ``parameters`` and ``sha256`` of the tensor data (see :func:`~.file.tensor_digest`).
+"""
+from __future__ import annotations
+
+import os
+import time
+from collections import Counter
+from typing import Any, Mapping
+
+import numpy as np
+
+from .. import __version__
+from ..errors import ExportError
+
+__all__ = ["FORMAT", "MANIFEST_VERSION", "build_manifest", "check_manifest", "intensity_section",
+           "histogram_percentiles", "timm_config"]
+
+FORMAT = "warmstart-encoder"
+MANIFEST_VERSION = 1
+_REQUIRED = ("encoder", "input", "intensity", "standardization", "corpus_values", "voxel_size_um", "corpus",
+             "training", "tensors")
+_TIMM_ARCHS = {"resnet18", "resnet34", "resnet50"}
+_PERCENTILES = (1, 5, 25, 50, 75, 95, 99)
+
+
+def histogram_percentiles(hist: Mapping[str, Any], qs: tuple[float, ...] = _PERCENTILES) -> dict[str, float]:
+    """Percentiles (0-100) from a fixed-range histogram ``{"range": [lo, hi], "counts": [...]}``,
+    interpolated linearly inside a bin.
+
+    Examples
+    --------
+    >>> histogram_percentiles({"range": [0, 4], "counts": [1, 1, 1, 1]}, (25, 50))
+    {'25': 1.0, '50': 2.0}
+    """
+    counts = np.asarray(hist["counts"], dtype=float)
+    lo, hi = (float(v) for v in hist["range"])
+    edges = np.linspace(lo, hi, len(counts) + 1)
+    cdf = np.concatenate([[0.0], np.cumsum(counts)])
+    total = cdf[-1]
+    if total <= 0:
+        return {}
+    return {f"{q:g}": round(float(np.interp(q / 100 * total, cdf, edges)), 6) for q in qs}
+
+
+def intensity_section(corpus: Mapping[str, Any]) -> dict[str, Any]:
+    """How new data is normalized: the corpus's rule, fitted per volume or one fixed reference."""
+    rule = dict(corpus["settings"]["intensity"])
+    fixed = rule["scheme"] == "fixed" or (rule["scheme"] == "two_point" and rule.get("reference_values") is not None)
+    out: dict[str, Any] = {"rule": rule, "fit": "fixed" if fixed else "per_volume"}
+    refs = [s["reference"] for s in corpus["sources"] if s.get("status") == "ok"]
+    if fixed and refs:
+        ref = {k: v for k, v in refs[0].items() if k != "stats"}
+        out["reference"] = ref
+    out["source_references"] = len(refs)
+    return out
+
+
+def _voxel_section(corpus: Mapping[str, Any]) -> dict[str, Any]:
+    src, patch = [], []
+    for s in corpus["sources"]:
+        if s.get("status") != "ok":
+            continue
+        for v, f in zip(s["voxel_size_um"][1:], s["downscale_factors"][1:]):
+            if v is not None:
+                src.append(float(v))
+                patch.append(float(v) * float(f))
+    rng = (lambda xs: [min(xs), max(xs)] if xs else None)
+    return {"source_range": rng(src), "patch_range": rng(patch),
+            "target": corpus["settings"]["sampling"].get("target_voxel_um"),
+            "unknown_sources": corpus.get("voxel_size_um", {}).get("unknown_sources", 0)}
+
+
+def _corpus_section(corpus: Mapping[str, Any], path: str | None) -> dict[str, Any]:
+    ok = [s for s in corpus["sources"] if s.get("status") == "ok"]
+    return {
+        "path": path,
+        "created": corpus.get("created"),
+        "sources": len(ok),
+        "sources_failed": corpus["counts"]["sources_failed"],
+        "formats": dict(Counter(s["format"] for s in ok)),
+        "modalities": corpus.get("modalities", []),
+        "clinical": bool(corpus.get("clinical")),
+        "patches": corpus["patches"]["count"],
+        "counts": {k: corpus["counts"][k] for k in ("planned", "kept") if k in corpus["counts"]},
+        "provenance": [{"name": s["name"], "sha256": s["sha256"], "hash_kind": s["hash_kind"]} for s in ok],
+    }
+
+
+def timm_config(arch: str, channels: int, patch: int, mean: float, std: float, first_conv: str) -> dict[str, Any] | None:
+    """A timm-style pretrained configuration, for the architectures timm names like ours.
+
+    ``mean``/``std`` apply to data already normalized by the file's intensity rule (timm's own
+    convention applies them to pixel values scaled to [0, 1]; here the rule takes that place).
+    """
+    if arch not in _TIMM_ARCHS:
+        return None
+    return {"architecture": arch, "pretrained_cfg": {
+        "input_size": [channels, patch, patch], "mean": [mean] * channels, "std": [std] * channels,
+        "first_conv": first_conv, "classifier": "fc", "num_classes": 0, "interpolation": "bilinear",
+        "crop_pct": 1.0, "tag": "warmstart"}}
+
+
+def build_manifest(*, spec: Mapping[str, Any], first_conv: str, weights: str, corpus: Mapping[str, Any],
+                   corpus_path: str | None, standardization: tuple[float, float], training: Mapping[str, Any]) -> dict[str, Any]:
+    """Assemble a manifest (without ``tensors``, which the writer adds).
+
+    Parameters
+    ----------
+    spec : dict
+        EncoderSpec dict.
+    first_conv : str
+        Module name of the input convolution.
+    weights : {"online", "momentum"}
+    corpus : dict
+        The corpus's ``manifest.json``.
+    corpus_path : str, optional
+    standardization : (mean, std)
+        What the encoder's input was standardized with during training.
+    training : dict
+        Training summary.
+    """
+    channels, patch = int(corpus["patches"]["shape"][0]), int(corpus["patches"]["shape"][-1])
+    mean, std = (float(v) for v in standardization)
+    hist = corpus["statistics"]["histogram"]
+    return {
+        "format": FORMAT,
+        "version": MANIFEST_VERSION,
+        "created": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
+        "warmstart_version": __version__,
+        "encoder": {"spec": dict(spec), "first_conv": first_conv, "weights": weights},
+        "input": {"channels": channels, "patch_size": patch, "axes": corpus["settings"]["sampling"]["axes"],
+                  "slices_per_patch": channels},
+        "intensity": intensity_section(corpus),
+        "standardization": {"mean": mean, "std": std},
+        "corpus_values": {"percentiles": histogram_percentiles(hist), "mean": corpus["statistics"]["mean"],
+                          "std": corpus["statistics"]["std"]},
+        "voxel_size_um": _voxel_section(corpus),
+        "corpus": _corpus_section(corpus, corpus_path),
+        "training": dict(training),
+        "timm": timm_config(spec["name"], channels, patch, mean, std, first_conv),
+    }
+
+
+def check_manifest(d: Any, path: str | os.PathLike[str]) -> dict[str, Any]:
+    """Refuse a manifest of another format, an unknown version or with missing fields."""
+    if not isinstance(d, dict) or d.get("format") != FORMAT:
+        raise ExportError(f"{path}: not a warmstart encoder manifest (format {d.get('format') if isinstance(d, dict) else None!r})")
+    if d.get("version") != MANIFEST_VERSION:
+        raise ExportError(f"{path}: encoder manifest version {d.get('version')!r} is unknown; this warmstart "
+                          f"({__version__}) reads version {MANIFEST_VERSION}; upgrade warmstart or re-export the encoder")
+    missing = [k for k in _REQUIRED if k not in d]
+    if missing:
+        raise ExportError(f"{path}: the encoder manifest lacks {', '.join(missing)}")
+    return d

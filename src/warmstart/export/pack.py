@@ -1,0 +1,150 @@
+"""Export: a pretraining run folder -> one encoder file (weights + manifest)."""
+from __future__ import annotations
+
+import csv
+import json
+import os
+import platform
+import warnings
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from ..errors import ExportError
+from .file import write_encoder_file
+from .manifest import build_manifest
+
+__all__ = ["export_encoder", "encoder_arrays", "WEIGHT_CHOICES"]
+
+WEIGHT_CHOICES = ("auto", "online", "momentum")
+
+
+def _read_json(path: Path, what: str) -> dict[str, Any]:
+    try:
+        return json.loads(path.read_text())
+    except FileNotFoundError:
+        raise ExportError(f"{path}: missing ({what})") from None
+    except json.JSONDecodeError as e:
+        raise ExportError(f"{path}: not valid JSON ({e})") from e
+
+
+def _corpus_manifest(run: Path) -> tuple[dict[str, Any], str | None]:
+    """The corpus manifest the run saved, else the one at the corpus path it names."""
+    recipe = _read_json(run / "recipe.json", "the run's resolved recipe; is this a pretraining run folder?")
+    saved = run / "corpus-manifest.json"
+    if saved.exists():
+        return _read_json(saved, "corpus manifest"), recipe.get("corpus")
+    corpus = Path(recipe.get("corpus", ""))
+    return _read_json(corpus / "manifest.json", f"manifest of the corpus {corpus} the run was trained on"), str(corpus)
+
+
+def _training_section(run: Path, ckpt: dict[str, Any], hp: dict[str, Any]) -> dict[str, Any]:
+    import torch
+
+    summary_path = run / "summary.json"
+    summary = json.loads(summary_path.read_text()) if summary_path.exists() else {}
+    rows = list(csv.DictReader(open(run / "history.csv"))) if (run / "history.csv").exists() else []
+    last = rows[-1] if rows else {}
+    steps = int(ckpt.get("global_step", 0))
+    total = int(hp.get("total_steps", steps))
+    knn = [float(r["knn"]) for r in rows if r.get("knn") not in (None, "")]
+    settings = hp["settings"]
+    versions = {"warmstart": summary.get("warmstart_version"), "torch": summary.get("torch_version", torch.__version__),
+                "lightning": summary.get("lightning_version"), "python": platform.python_version()}
+    try:
+        import lightly
+
+        versions["lightly"] = lightly.__version__
+    except ImportError:  # pragma: no cover - lightly is part of the train extra
+        pass
+    return {
+        "method": settings["method"], "method_params": settings.get("method_params", {}),
+        "steps": steps, "planned_steps": total, "finished": bool(summary) and steps >= total,
+        "epochs": summary.get("epochs"), "batch_size": settings["batch_size"], "lr": settings["lr"],
+        "seed": settings["seed"],
+        "final_loss": float(last["loss"]) if last.get("loss") else summary.get("final_loss"),
+        "final_spread": float(last["spread"]) if last.get("spread") else summary.get("final_spread"),
+        "knn_accuracy": knn[-1] if knn else None,
+        "seconds": summary.get("seconds"),
+        "library_versions": versions,
+    }
+
+
+def export_encoder(run: str | os.PathLike[str], out: str | os.PathLike[str], *, weights: str = "auto",
+                   checkpoint: str | os.PathLike[str] | None = None) -> tuple[Path, dict[str, Any]]:
+    """Write a run's encoder to one safetensors file with its manifest.
+
+    Parameters
+    ----------
+    run : path
+        A pretraining run folder (``warmstart pretrain ... -o RUN``).
+    out : path
+        The encoder file to write (``.safetensors``); written atomically.
+    weights : {"auto", "online", "momentum"}
+        Which copy of the encoder: ``momentum`` is the EMA copy of MoCo / BYOL (the one usually
+        kept after training), ``online`` the one the optimizer trained; ``auto`` takes the
+        momentum copy where the method has one.
+    checkpoint : path, optional
+        A checkpoint of the run other than ``checkpoints/last.ckpt``.
+
+    Returns
+    -------
+    (Path, dict)
+        The file written and its manifest.
+
+    Raises
+    ------
+    ExportError
+        Not a run folder, no checkpoint, no momentum copy when one is asked for, or a checkpoint
+        whose weights do not fit the encoder it records.
+    """
+    import torch
+
+    from ..encoders import build_encoder
+
+    if weights not in WEIGHT_CHOICES:
+        raise ExportError(f"weights must be one of {', '.join(WEIGHT_CHOICES)}, got {weights!r}")
+    run = Path(run)
+    ckpt_path = Path(checkpoint) if checkpoint else run / "checkpoints" / "last.ckpt"
+    if not ckpt_path.is_file():
+        raise ExportError(f"{ckpt_path}: no checkpoint to export (has the run in {run} started?)")
+    corpus, corpus_path = _corpus_manifest(run)
+    try:
+        ckpt = torch.load(ckpt_path, map_location="cpu", weights_only=True)
+    except Exception as e:
+        raise ExportError(f"{ckpt_path}: cannot be read as a checkpoint ({e})") from e
+    hp = ckpt.get("hyper_parameters") or {}
+    if "settings" not in hp or "in_channels" not in hp:
+        raise ExportError(f"{ckpt_path}: not a warmstart pretraining checkpoint (no recorded settings)")
+    state = ckpt["state_dict"]
+    has_momentum = any(k.startswith("method.encoder_momentum.") for k in state)
+    if weights == "momentum" and not has_momentum:
+        raise ExportError(f"{ckpt_path}: method {hp['settings']['method']!r} keeps no momentum copy of the encoder; "
+                          "export --weights online")
+    chosen = "momentum" if (weights == "momentum" or (weights == "auto" and has_momentum)) else "online"
+    prefix = "method.encoder_momentum." if chosen == "momentum" else "method.encoder."
+    s = hp["settings"]
+    enc = build_encoder(s["encoder"], **{"in_channels": int(hp["in_channels"]), **s.get("encoder_params", {})})
+    sub = {k[len(prefix):]: v for k, v in state.items() if k.startswith(prefix)}
+    try:
+        enc.load_state_dict(sub, strict=True)
+    except RuntimeError as e:
+        raise ExportError(f"{ckpt_path}: the weights do not fit encoder {s['encoder']!r}: {e}") from e
+    arrays = encoder_arrays(enc)
+    training = _training_section(run, ckpt, hp)
+    if not training["finished"]:
+        warnings.warn(f"{run}: the run stopped at step {training['steps']} of {training['planned_steps']}; "
+                      "exporting that state (the manifest says so)", stacklevel=2)
+    std = tuple(hp.get("standardization", (0.0, 1.0)))
+    manifest = build_manifest(spec=enc.spec.to_dict(), first_conv=enc.first_conv, weights=chosen, corpus=corpus,
+                              corpus_path=corpus_path, standardization=std, training=training)  # type: ignore[arg-type]
+    path = write_encoder_file(out, arrays, manifest)
+    from .file import read_manifest
+
+    return path, read_manifest(path)
+
+
+def encoder_arrays(encoder: Any) -> dict[str, np.ndarray]:
+    """A module's state dict as numpy arrays (the tensors an encoder file holds)."""
+    return {k: v.detach().cpu().contiguous().numpy() for k, v in encoder.state_dict().items()}
