@@ -67,3 +67,46 @@ def test_demo_default_from_the_command_line(tmp_path):
     assert proc.returncode == 0, proc.stderr[-2000:]
     result = json.loads(proc.stdout)
     assert result["build"]["n_patches"] > 500
+
+
+PYTHON_BLOCKS = re.findall(r"```python\n(.*?)```", README, flags=re.S)
+
+
+def test_readme_python_snippets_run(tmp_path, monkeypatch):
+    import warnings
+
+    import numpy as np
+    import tifffile
+    from conftest import textured
+
+    import warmstart as ws
+    from warmstart.errors import DataMismatchWarning
+    from warmstart.corpus.build import build_corpus
+    from warmstart.corpus.settings import CorpusSettings, SamplingSettings
+    from warmstart.pretrain.loop import pretrain
+    from warmstart.pretrain.settings import PretrainSettings
+
+    (tmp_path / "a").mkdir()
+    for i in range(2):
+        np.save(tmp_path / "a" / f"v{i}.npy", textured(shape=(8, 64, 64), seed=i))
+    corpus = build_corpus(tmp_path / "a", tmp_path / "c.zarr", CorpusSettings(sampling=SamplingSettings(patch_size=32, stride=16)),
+                          report=False, progress=False).path
+    quick = dict(batch_size=8, max_steps=1, num_workers=0, precision="32-true", accelerator="cpu")
+    for name, enc in (("encoder", "resnet18"), ("unet-encoder", "unet")):
+        pretrain(corpus, tmp_path / name, PretrainSettings(encoder=enc, **quick), progress=False)
+        ws.export_encoder(tmp_path / name, tmp_path / f"{name}.safetensors")
+    tifffile.imwrite(tmp_path / "slice.tif", textured(shape=(1, 64, 64), seed=7)[0])
+    monkeypatch.chdir(tmp_path)
+    assert len(PYTHON_BLOCKS) >= 3
+    assert any("segmentation_models_pytorch" in b for b in PYTHON_BLOCKS) and any("monai" in b for b in PYTHON_BLOCKS)
+    for block in PYTHON_BLOCKS:
+        scope: dict = {}
+        with warnings.catch_warnings():
+            warnings.simplefilter("error", DataMismatchWarning)  # the snippets' image is corpus-like
+            exec(compile(block, "README.md", "exec"), scope)  # noqa: S102 - the README's own code
+    # The plain-PyTorch snippet really warm-started and ran the network.
+    first = next(b for b in PYTHON_BLOCKS if "UNet.from_file" in b)
+    scope = {}
+    exec(compile(first, "README.md", "exec"), scope)
+    assert scope["net"].warm_start_report.complete and tuple(scope["logits"].shape) == (1, 3, 64, 64)
+    assert len(scope["features"]) == 5

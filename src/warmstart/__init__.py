@@ -23,7 +23,6 @@ _LAZY = {
     "open_corpus": "warmstart.corpus.store",
     "write_report": "warmstart.corpus.report",
     "load_recipe": "warmstart.recipe",
-    "pretrain": "warmstart.pretrain.loop",
     "export_encoder": "warmstart.export.pack",
     "read_manifest": "warmstart.export.file",
     "load_encoder": "warmstart.export.load",
