@@ -413,3 +413,26 @@ def test_cli_export_inspect_and_model_card(r18, tmp_path, capsys):
     assert "verified" in capsys.readouterr().out
     md = card.read_text()
     assert "## Intended use" in md and "not for diagnosis" in md and read_manifest(out)["tensors"]["sha256"] in md
+
+
+def test_timm_builds_a_model_from_the_manifest_configuration(r18):
+    # timm's own resolver (timm.data.resolve_data_config) must read input size, mean and std from it.
+    import timm
+    from timm.data import resolve_data_config
+
+    cfg = read_manifest(r18)["timm"]
+    model = timm.create_model(cfg["architecture"], pretrained=False, in_chans=1, num_classes=0,
+                              pretrained_cfg_overlay=cfg["pretrained_cfg"])
+    data = resolve_data_config({}, model=model)
+    assert tuple(data["input_size"]) == (1, 32, 32)
+    assert data["mean"] == pytest.approx(tuple(cfg["pretrained_cfg"]["mean"]))
+    assert data["std"] == pytest.approx(tuple(cfg["pretrained_cfg"]["std"]))
+    assert ws.warm_start(model, r18).complete
+
+
+def test_monai_unet_with_residual_units_is_refused(unet8):
+    from monai.networks.nets import UNet as MonaiUNet
+
+    net = MonaiUNet(spatial_dims=2, in_channels=1, out_channels=2, channels=(8, 16, 32, 64, 128), strides=(2, 2, 2, 2))
+    with pytest.raises(WarmStartError, match="no layout places"):
+        ws.warm_start(net, unet8)
