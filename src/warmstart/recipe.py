@@ -1,6 +1,6 @@
 """Recipes: TOML files that say how each stage runs.
 
-A recipe has one table per stage (``[corpus]``, ``[pretrain]``) and an optional ``description``. Unknown
+A recipe has one table per stage (``[corpus]``, ``[pretrain]``, ``[bench]``) and an optional ``description``. Unknown
 keys and wrong types are errors naming the key and the file. Any key can be overridden with
 ``key=value`` strings (``corpus.sampling.patch_size=64``; the stage prefix may be left out), the
 value read as TOML (``64``, ``"ZYX"`` or ``ZYX``, ``[0.5, 99.5]``, ``true``).
@@ -29,7 +29,7 @@ def _pretrain_settings() -> type:
     return PretrainSettings
 
 
-_SECTIONS = {"corpus": CorpusSettings, "pretrain": None}
+_SECTIONS = {"corpus": CorpusSettings, "pretrain": None, "bench": None}
 _TOP_KEYS = {"description"}
 
 
@@ -47,11 +47,13 @@ class Recipe:
 
     corpus: CorpusSettings = field(default_factory=CorpusSettings)
     pretrain: Any = None
+    bench: Any = None
     description: str = ""
     source: str = "defaults"
 
     def to_dict(self) -> dict[str, Any]:
-        return {"description": self.description, "corpus": self.corpus.to_dict(), "pretrain": self.pretrain.to_dict()}
+        return {"description": self.description, "corpus": self.corpus.to_dict(), "pretrain": self.pretrain.to_dict(),
+                "bench": self.bench.to_dict()}
 
 
 def recipe_path(name_or_path: str | os.PathLike[str]) -> Path:
@@ -130,6 +132,9 @@ def load_recipe(path: str | os.PathLike[str] | None = None, overrides: Sequence[
     try:
         corpus = CorpusSettings.from_dict(data.get("corpus", {}), "corpus")
         pretrain = _pretrain_settings().from_dict(data.get("pretrain", {}), "pretrain")
+        from .bench.settings import BenchSettings
+
+        bench = BenchSettings.from_dict(data.get("bench", {}), "bench")
     except RecipeError as err:
         raise RecipeError(f"{where}: {err}") from err
-    return Recipe(corpus=corpus, pretrain=pretrain, description=str(data.get("description", "")), source=where)
+    return Recipe(corpus=corpus, pretrain=pretrain, bench=bench, description=str(data.get("description", "")), source=where)

@@ -1,0 +1,168 @@
+"""The benchmark report: ``bench.json`` (every run, every epoch), ``bench.md`` (tables and the
+verdict in words) and ``bench.html`` (the same with the plots embedded; one self-contained file)."""
+from __future__ import annotations
+
+import base64
+import html
+import io
+from pathlib import Path
+from typing import Any, Sequence
+
+import numpy as np
+
+from ..corpus.store import write_json
+
+__all__ = ["write_report", "markdown", "verdicts"]
+
+_NAMES = {"test_dice": "final test Dice", "early_dice": "early validation Dice", "auc": "area under the validation curve"}
+
+
+def _num(x: Any, d: int = 3) -> str:
+    return "n/a" if x is None else f"{x:.{d}f}"
+
+
+def _ci(r: dict[str, Any], d: int = 3) -> str:
+    if r.get("mean") is None:
+        return "n/a"
+    if r.get("low") is None:
+        return f"{r['mean']:.{d}f}"
+    return f"{r['mean']:.{d}f} [{r['low']:.{d}f}, {r['high']:.{d}f}]"
+
+
+def verdicts(result: dict[str, Any]) -> list[str]:
+    """One sentence per (encoder, size, figure): the paired difference, and whether it is
+    significant at 95 % (its t interval excludes zero)."""
+    out = []
+    labels = {c["id"]: c["label"] for c in result["contenders"]}
+    for n, rows in result["summary"].items():
+        for cid, row in rows.items():
+            for f, d in row.get("vs_random", {}).items():
+                if d["mean"] is None:
+                    continue
+                sig = "significant at 95 %" if d["significant"] else "not significant at 95 %"
+                p = "n/a" if d["wilcoxon_p"] is None else f"{d['wilcoxon_p']:.3g}"
+                out.append(f"{labels[cid]}, {n} frame(s), {_NAMES[f]}: {d['mean']:+.3f} vs random "
+                           f"(95 % CI {_num(d['low'])} to {_num(d['high'])}, Wilcoxon p = {p}, better in {d['wins']} of "
+                           f"{d['pairs']} seeds): {sig}.")
+    return out
+
+
+def markdown(result: dict[str, Any]) -> str:
+    s = result["settings"]
+    labels = {c["id"]: c["label"] for c in result["contenders"]}
+    lines = ["# Few-shot segmentation benchmark", "",
+             f"{len(result['contenders'])} contenders, training sets of {', '.join(map(str, s['sizes']))} frame(s) of "
+             f"{s['frame_size']} px, {s['seeds']} seeds each, {s['epochs']} epochs x {s['steps_per_epoch']} steps of "
+             f"{s['batch_size']} patches of {s['patch_size']} px; {result['classes']} classes; test: "
+             f"{len(result['split']['test'])} whole slices, validation: {len(result['split']['val'])}; device "
+             f"{result['device']}. Means with 95 % Student t intervals over seeds; differences are paired by seed "
+             "(same patches, same decoder initialization).", ""]
+    for n, rows in result["summary"].items():
+        lines += [f"## {n} training frame(s)", "",
+                  "| contender | final test Dice | early Dice | curve area | epochs to "
+                  f"{s['dice_threshold']:g} (reached) | test Dice vs random | early Dice vs random |",
+                  "|---|---|---|---|---|---|---|"]
+        for cid, row in rows.items():
+            e = row["epochs_to_threshold"]
+            vs = row.get("vs_random", {})
+
+            def d(f: str) -> str:
+                if f not in vs or vs[f]["mean"] is None:
+                    return ""
+                return f"{_ci(vs[f])}{' *' if vs[f]['significant'] else ''}"
+
+            lines.append(f"| {labels[cid]} | {_ci(row['test_dice'])} | {_ci(row['early_dice'])} | {_ci(row['auc'])} | "
+                         f"{_ci(e, 1)} ({e['reached']}/{e['runs']}) | {d('test_dice')} | {d('early_dice')} |")
+        lines.append("")
+    lines += ["`*`: the 95 % interval of the paired difference excludes zero. Early Dice: validation Dice after "
+              f"{s['early_steps']} steps.", "", "## In words", ""] + [f"- {v}" for v in verdicts(result)] + [""]
+    lines += ["## Contenders", ""]
+    for c in result["contenders"]:
+        lines.append(f"- **{c['label']}** (`{c['id']}`): {c['spec']['name']} {c['spec']['params']}; input: {c['normalization']}")
+        if c["leakage"]:
+            lines.append(f"  - **tested on data seen in pretraining**: {', '.join(c['leakage'])} are corpus sources of this encoder")
+        for m in c["mismatch"][:5]:
+            lines.append(f"  - data check: {m}")
+    return "\n".join(lines) + "\n"
+
+
+def _png(fig: Any) -> str:
+    import matplotlib.pyplot as plt
+
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=90, bbox_inches="tight")
+    plt.close(fig)
+    return base64.b64encode(buf.getvalue()).decode()
+
+
+def _plots(result: dict[str, Any], pairs: Sequence[Any], out: Path) -> list[tuple[str, str]]:
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    from .stats import mean_ci
+
+    cons = result["contenders"]
+    sizes = result["settings"]["sizes"]
+    figs = []
+    fig, axes = plt.subplots(1, len(sizes), figsize=(3.2 * len(sizes), 3.2), squeeze=False, sharey=True)
+    for ax, n in zip(axes[0], sizes):
+        data = [[r["test_dice"] for r in result["runs"] if r["size"] == n and r["contender"] == c["id"]] for c in cons]
+        ax.boxplot(data, widths=0.5, showfliers=False)
+        for k, vals in enumerate(data):
+            ax.scatter(np.full(len(vals), k + 1) + np.linspace(-0.08, 0.08, len(vals)), vals, s=14, zorder=3)
+        ax.set_xticks(range(1, len(cons) + 1), [c["id"] for c in cons], rotation=30, ha="right")
+        ax.set_title(f"{n} frame(s)")
+    axes[0][0].set_ylabel("test Dice (foreground mean)")
+    figs.append(("Final test Dice per seed", _png(fig)))
+    fig, axes = plt.subplots(1, len(sizes), figsize=(3.2 * len(sizes), 3.0), squeeze=False, sharey=True)
+    for ax, n in zip(axes[0], sizes):
+        for c in cons:
+            curves = np.array([r["val_dice"] for r in result["runs"] if r["size"] == n and r["contender"] == c["id"]])
+            if not len(curves):
+                continue
+            ep = np.arange(1, curves.shape[1] + 1)
+            ci = [mean_ci(curves[:, k]) for k in range(curves.shape[1])]
+            m = np.array([x["mean"] for x in ci])
+            ax.plot(ep, m, label=c["id"])
+            if curves.shape[0] > 1:
+                ax.fill_between(ep, [x["low"] for x in ci], [x["high"] for x in ci], alpha=0.2)
+        ax.set_title(f"{n} frame(s)")
+        ax.set_xlabel("epoch")
+    axes[0][0].set_ylabel("validation Dice")
+    axes[0][-1].legend(fontsize=7)
+    figs.append(("Validation Dice per epoch (mean, 95 % band)", _png(fig)))
+    n0 = sizes[0]
+    preds = {c["id"]: out / "runs" / f"{c['id']}-n{n0}-s0-pred.npz" for c in cons}
+    preds = {k: np.load(v) for k, v in preds.items() if v.exists()}
+    test = result["split"]["test"][:3]
+    if preds and test:
+        cols = 2 + len(preds)
+        fig, axes = plt.subplots(len(test), cols, figsize=(2.2 * cols, 2.2 * len(test)), squeeze=False)
+        for row, (i, z) in enumerate(test):
+            img = pairs[i].image[z].astype(float)
+            lo, hi = np.percentile(img, [1, 99])
+            panels = [("image", img, dict(cmap="gray", vmin=lo, vmax=hi)), ("label", pairs[i].label[z], dict(cmap="viridis"))]
+            panels += [(k, p[f"arr_{row}"], dict(cmap="viridis")) for k, p in preds.items() if f"arr_{row}" in p]
+            for col, (title, a, kw) in enumerate(panels):
+                axes[row][col].imshow(a, **kw)
+                axes[row][col].set_axis_off()
+                if row == 0:
+                    axes[row][col].set_title(title, fontsize=8)
+        figs.append((f"Test predictions, {n0} frame(s), seed 0", _png(fig)))
+    return figs
+
+
+def write_report(out: Path, result: dict[str, Any], pairs: Sequence[Any]) -> dict[str, str]:
+    """Write bench.json, bench.md and bench.html into ``out``; returns their paths."""
+    paths = {"json": str(out / "bench.json"), "md": str(out / "bench.md"), "html": str(out / "bench.html")}
+    write_json(out / "bench.json", {**result, "report": paths})
+    md = markdown(result)
+    (out / "bench.md").write_text(md)
+    body = "".join(f"<h2>{html.escape(t)}</h2><img src='data:image/png;base64,{b}'>" for t, b in _plots(result, pairs, out))
+    (out / "bench.html").write_text(
+        "<!doctype html><meta charset='utf-8'><title>warmstart bench</title>"
+        "<style>body{font-family:sans-serif;max-width:1100px;margin:auto}pre{white-space:pre-wrap}</style>"
+        f"<pre>{html.escape(md)}</pre>{body}")
+    return paths

@@ -1,0 +1,233 @@
+"""``warmstart bench``: every (contender, size, seed) run, resumable, then the summary and report."""
+from __future__ import annotations
+
+import json
+import os
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Callable, Sequence
+
+import numpy as np
+
+from ..corpus.store import write_json
+from ..errors import WarmstartError
+from .data import load_pairs, make_split, n_classes
+from .settings import BenchSettings
+from .stats import epochs_to_reach, mean_ci, paired_difference
+
+__all__ = ["Contender", "run_bench", "summarize"]
+
+FIGURES = ("test_dice", "early_dice", "auc")
+
+
+@dataclass
+class Contender:
+    """Random initialization of one architecture, or one encoder file."""
+
+    id: str
+    label: str
+    spec: dict[str, Any]
+    file: str | None = None
+    baseline: str | None = None  # the random contender it is paired with
+    normalization: str = ""
+    leakage: list[str] = field(default_factory=list)
+    mismatch: list[str] = field(default_factory=list)
+
+    def to_dict(self) -> dict[str, Any]:
+        return dict(self.__dict__)
+
+
+def _spec_key(spec: dict[str, Any]) -> str:
+    return json.dumps({"name": spec["name"], "params": {k: v for k, v in spec["params"].items() if k != "in_channels"}},
+                      sort_keys=True)
+
+
+def _contenders(encoders: Sequence[str | os.PathLike[str]], s: BenchSettings) -> list[Contender]:
+    from ..export.card import _intensity_line
+    from ..export.file import read_manifest
+
+    files = []
+    for f in encoders:
+        m = read_manifest(f)
+        files.append((str(f), m))
+    specs: dict[str, dict[str, Any]] = {}
+    for _, m in files:
+        specs.setdefault(_spec_key(m["encoder"]["spec"]), m["encoder"]["spec"])
+    if not files:
+        from ..encoders import build_encoder
+
+        spec = build_encoder(s.random_encoder, **{"in_channels": 1, **s.random_encoder_params}).spec.to_dict()
+        specs[_spec_key(spec)] = spec
+    randoms = {}
+    out = []
+    for key, spec in specs.items():
+        cid = "random" if len(specs) == 1 else f"random-{spec['name']}-{len(randoms)}"
+        randoms[key] = cid
+        out.append(Contender(cid, f"random init ({spec['name']})", spec,
+                             normalization="percentiles 0.5 / 99.5 -> 0 / 1, fitted on each volume (default)"))
+    seen: set[str] = set()
+    for f, m in files:
+        stem = Path(f).name.split(".")[0]
+        cid = stem if stem not in seen and not stem.startswith("random") else f"{stem}-{len(seen)}"
+        seen.add(cid)
+        st = m["standardization"]
+        out.append(Contender(cid, f"warm start {Path(f).name}", m["encoder"]["spec"], f,
+                             randoms[_spec_key(m["encoder"]["spec"])],
+                             f"{_intensity_line(m)}, then (x - {st['mean']:.4g}) / {st['std']:.4g} (from the file)"))
+    return out
+
+
+def _prepared(contender: Contender, pairs: list[Any]) -> list[np.ndarray]:
+    from ..export.prepare import prepare
+    from ..intensity import fit_intensity
+
+    if contender.file is None:
+        return [fit_intensity(p.image).apply(p.image) for p in pairs]
+    out = []
+    for p in pairs:
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            out.append(prepare(p.image, contender.file, voxel_size_um=p.voxel_size_um))
+        contender.mismatch += [f"{p.name}: {w.message}" for w in caught]
+    return out
+
+
+def _model_factory(c: Contender, classes: int, s: BenchSettings) -> Callable[[], Any]:
+    from ..unet import UNet
+
+    if c.file is None:
+        spec = {**c.spec, "params": {**c.spec["params"], "in_channels": 1}}
+        return lambda: UNet(spec, classes, s.decoder_norm)
+    return lambda: UNet.from_file(c.file, classes, in_channels=1, decoder_norm=s.decoder_norm)
+
+
+def _device(s: BenchSettings) -> Any:
+    import torch
+
+    if s.device == "cuda" or (s.device == "auto" and torch.cuda.is_available()):
+        return torch.device("cuda")
+    return torch.device("cpu")
+
+
+def summarize(runs: list[dict[str, Any]], contenders: list[Contender], s: BenchSettings) -> dict[str, Any]:
+    """Per size: mean and CI of every figure per contender, and paired differences against the
+    matching random initialization (paired by seed). Computed from the run records alone."""
+    out: dict[str, Any] = {}
+    for n in s.sizes:
+        at = [r for r in runs if r["size"] == n]
+        by = {c.id: sorted([r for r in at if r["contender"] == c.id], key=lambda r: r["seed"]) for c in contenders}
+        rows: dict[str, Any] = {}
+        best_random = {}
+        for c in contenders:
+            if c.file is None and by[c.id]:
+                best_random[c.id] = float(np.max(np.mean([r["val_dice"] for r in by[c.id]], axis=0)))
+        for c in contenders:
+            rs = by[c.id]
+            row: dict[str, Any] = {f: mean_ci([r[f] for r in rs]) for f in FIGURES}
+            reached = [r["epochs_to_threshold"] for r in rs if r["epochs_to_threshold"] is not None]
+            row["epochs_to_threshold"] = {**mean_ci(reached), "reached": len(reached), "runs": len(rs)}
+            base = c.baseline or c.id
+            if base in best_random:
+                t95 = 0.95 * best_random[base]
+                e95 = [epochs_to_reach(r["val_dice"], t95) for r in rs]
+                row["epochs_to_95pct_random"] = {**mean_ci([e for e in e95 if e is not None]),
+                                                 "threshold": t95, "reached": sum(e is not None for e in e95)}
+            row["seconds"] = mean_ci([r["seconds"] for r in rs])
+            if c.baseline:
+                ref = {r["seed"]: r for r in by[c.baseline]}
+                common = [r for r in rs if r["seed"] in ref]
+                row["vs_random"] = {f: paired_difference([r[f] for r in common], [ref[r["seed"]][f] for r in common])
+                                    for f in FIGURES}
+            rows[c.id] = row
+        out[str(n)] = rows
+    return out
+
+
+def run_bench(labels: str | os.PathLike[str], encoders: Sequence[str | os.PathLike[str]], out: str | os.PathLike[str],
+              settings: BenchSettings | None = None, *, progress: bool = True,
+              echo: Callable[[str], None] = lambda _m: None) -> dict[str, Any]:
+    """Fine-tune random initialization and every encoder file on the same labelled frames.
+
+    Parameters
+    ----------
+    labels : path
+        Folder with ``images/`` and ``labels/`` or a TOML list of pairs (see :mod:`.data`).
+    encoders : paths
+        Exported encoder files (none: random initialization only).
+    out : path
+        Report folder; ``runs/`` keeps one JSON per finished run, and a rerun skips them.
+    settings : BenchSettings, optional
+
+    Returns
+    -------
+    dict
+        What ``bench.json`` holds: settings, split, contenders, runs, summary and report paths.
+    """
+    import torch
+    from tqdm.auto import tqdm
+
+    from .report import write_report
+
+    s = settings or BenchSettings()
+    out = Path(out)
+    (out / "runs").mkdir(parents=True, exist_ok=True)
+    if s.threads:
+        torch.set_num_threads(s.threads)
+    pairs = load_pairs(labels, s.ignore_label)
+    classes = n_classes(pairs, s.ignore_label)
+    split = make_split(pairs, s)
+    contenders = _contenders(encoders, s)
+    labs = [p.label for p in pairs]
+    for c in contenders:
+        if c.file:
+            from ..export.file import read_manifest
+
+            known = {p["sha256"] for p in read_manifest(c.file)["corpus"]["provenance"]}
+            c.leakage = [p.name for p in pairs if p.sha256 in known]
+    device = _device(s)
+    planned = [(n, seed, c) for n in s.sizes for seed in range(s.seeds) for c in contenders]
+    prepared: dict[str, list[np.ndarray]] = {}
+    runs = []
+    bar = tqdm(planned, desc="bench runs", unit="run", disable=not progress)
+    for n, seed, c in bar:
+        path = out / "runs" / f"{c.id}-n{n}-s{seed}.json"
+        if path.exists():
+            runs.append(json.loads(path.read_text()))
+            continue
+        if c.id not in prepared:
+            prepared[c.id] = _prepared(c, pairs)
+        keep = 3 if seed == 0 else 0
+        r = _one_run(c, prepared[c.id], labs, split, n, seed, classes, s, device, keep)
+        preds = r.pop("predictions", None)
+        if preds is not None:
+            np.savez_compressed(out / "runs" / f"{c.id}-n{n}-s{seed}-pred.npz", *preds)
+        rec = {"contender": c.id, "size": n, "seed": seed, **r}
+        write_json(path, rec)
+        runs.append(rec)
+        bar.set_postfix_str(f"{c.id} n={n} seed={seed} Dice {r['test_dice']:.3f}")
+    for c in contenders:  # mismatch notes also when every run was reused
+        if c.file and c.id not in prepared:
+            _prepared(c, pairs)
+    result = {
+        "settings": s.to_dict(), "classes": classes, "device": str(device),
+        "labels": [{"name": p.name, "image": p.image_path, "label": p.label_path, "sha256": p.sha256,
+                    "shape": list(p.image.shape)} for p in pairs],
+        "split": split.to_dict(), "contenders": [c.to_dict() for c in contenders], "runs": runs,
+        "summary": summarize(runs, contenders, s),
+    }
+    result["report"] = write_report(out, result, pairs)
+    return result
+
+
+def _one_run(c: Contender, images: list[np.ndarray], labels: list[np.ndarray], split: Any, n: int, seed: int,
+             classes: int, s: BenchSettings, device: Any, keep: int) -> dict[str, Any]:
+    from .train import fine_tune
+
+    try:
+        return fine_tune(_model_factory(c, classes, s), images, labels, split, n, seed, classes, s, device, keep)
+    except WarmstartError:
+        raise
+    except RuntimeError as e:  # e.g. out of memory: name the run
+        raise WarmstartError(f"bench run {c.id} n={n} seed={seed} failed: {e}") from e
+

@@ -1,0 +1,206 @@
+"""The few-shot benchmark: metrics and statistics against reference libraries, the split and the
+patch plan, and an end-to-end run whose report must agree with its raw runs."""
+from __future__ import annotations
+
+import json
+import re
+import warnings
+
+import numpy as np
+import pytest
+import torch
+
+from warmstart.bench.data import load_pairs, make_split
+from warmstart.bench.settings import BenchSettings
+from warmstart.bench.stats import dice_per_class, mean_ci, paired_difference
+from warmstart.errors import VolumeReadError
+
+
+# ----------------------------------------------------------------------------- metrics / statistics
+
+
+def test_dice_against_hand_computation_torchmetrics_and_monai():
+    # By hand: class 1 has |P & G| = 2, |P| = 3, |G| = 3 -> 2*2/6 = 0.667.
+    pred = np.array([[0, 1, 1], [1, 0, 2]])
+    truth = np.array([[0, 1, 0], [1, 1, 2]])
+    d = dice_per_class(pred, truth, 3)
+    assert d[1] == pytest.approx(2 * 2 / 6) and d[2] == pytest.approx(1.0) and d[0] == pytest.approx(2 * 1 / 4)
+    rng = np.random.default_rng(0)
+    p, t = rng.integers(0, 3, (2, 16, 16)), rng.integers(0, 3, (2, 16, 16))
+    ours = dice_per_class(p, t, 3)
+    # torchmetrics: per-class F1 over pooled voxels equals pooled Dice.
+    from torchmetrics.classification import MulticlassF1Score
+
+    tm = MulticlassF1Score(num_classes=3, average=None)(torch.from_numpy(p).flatten(), torch.from_numpy(t).flatten())
+    np.testing.assert_allclose(ours, tm.numpy(), rtol=1e-6)
+    # MONAI's compute_dice on one-hot maps, with the batch pooled into one image.
+    from monai.metrics import compute_dice
+
+    oh = lambda a: torch.nn.functional.one_hot(torch.from_numpy(a).reshape(1, -1), 3).permute(0, 2, 1).float()  # noqa: E731
+    mo = compute_dice(oh(p), oh(t), include_background=True)
+    np.testing.assert_allclose(ours, mo.numpy()[0], rtol=1e-6)
+    # Ignore label: those voxels count for nothing.
+    t2 = t.copy()
+    t2[0] = 9
+    np.testing.assert_allclose(dice_per_class(p, t2, 3, ignore_label=9), dice_per_class(p[1], t[1], 3))
+
+
+def test_confidence_interval_against_scipy_and_a_worked_example():
+    from scipy import stats
+
+    x = [0.71, 0.74, 0.69, 0.80, 0.77, 0.73]
+    r = mean_ci(x)
+    lo, hi = stats.t.interval(0.95, len(x) - 1, loc=np.mean(x), scale=stats.sem(x))  # scipy's own interval
+    assert (r["low"], r["high"]) == pytest.approx((lo, hi))
+    # Worked example (textbook arithmetic, from memory): 1..5 has mean 3, s = 1.581, t(0.975, 4) = 2.776.
+    r = mean_ci([1, 2, 3, 4, 5])
+    assert r["low"] == pytest.approx(3 - 2.7764 * 1.5811 / 5**0.5, abs=1e-3)
+    assert mean_ci([0.5])["low"] is None and mean_ci([])["mean"] is None
+
+
+def test_paired_difference_against_scipy_wilcoxon():
+    from scipy import stats
+
+    a = [0.81, 0.79, 0.85, 0.80, 0.83, 0.78, 0.84]
+    b = [0.76, 0.78, 0.80, 0.79, 0.75, 0.79, 0.77]
+    r = paired_difference(a, b)
+    d = np.subtract(a, b)
+    assert r["wilcoxon_p"] == pytest.approx(stats.wilcoxon(d).pvalue)
+    assert r["mean"] == pytest.approx(d.mean()) and r["wins"] == 6 and r["pairs"] == 7
+    assert r["significant"] == (r["low"] > 0)
+    assert paired_difference([1, 1], [1, 1])["wilcoxon_p"] is None
+
+
+# ------------------------------------------------------------------------------------ split, plan
+
+
+@pytest.fixture(scope="module")
+def labelled(tmp_path_factory):
+    from warmstart.demo.scenario import write_labelled_set
+
+    return write_labelled_set(tmp_path_factory.mktemp("lab") / "labelled", n=2, shape=(20, 64, 64))
+
+
+def test_split_is_deterministic_nested_and_keeps_away_from_test_slices(labelled):
+    pairs = load_pairs(labelled)
+    s = BenchSettings(sizes=[1, 4, 16], frame_size=48, patch_size=32, val_slices=3, test_slices=5, gap_slices=2)
+    a, b = make_split(pairs, s), make_split(pairs, s)
+    assert a.to_dict() == b.to_dict() and len(a.frames) == 16
+    assert make_split(pairs, BenchSettings(**{**s.to_dict(), "split_seed": 1})).to_dict() != a.to_dict()
+    held = set(a.test) | set(a.val)
+    assert not set(a.test) & set(a.val) and len(held) == 8
+    for i, z, y, x, h, w in a.frames:
+        assert all(not (j == i and abs(z - zz) <= 2) for j, zz in held)
+        assert (h, w) == (48, 48) and 0 <= y <= 64 - 48 and 0 <= x <= 64 - 48
+    assert make_split(pairs, BenchSettings(**{**s.to_dict(), "sizes": [4]})).frames[:4] == a.frames[:4]  # nested
+
+
+def test_same_seed_same_patches_for_every_contender(labelled):
+    from warmstart.bench.train import patch_plan
+
+    s = BenchSettings(sizes=[1, 4], frame_size=48, patch_size=32, epochs=2, steps_per_epoch=3, val_slices=2, test_slices=2)
+    split = make_split(load_pairs(labelled), s)
+    p = patch_plan(split, 4, s, seed=3)
+    assert np.array_equal(p, patch_plan(split, 4, s, seed=3)) and p.shape == (6, 8, 6)
+    assert not np.array_equal(p, patch_plan(split, 4, s, seed=4))
+    assert set(np.unique(p[..., 0])) <= {0, 1, 2, 3} and p[..., 1].max() <= 16
+
+
+def test_bad_labelled_sets_name_the_file(tmp_path, labelled):
+    import shutil
+
+    import tifffile
+
+    bad = tmp_path / "bad"
+    shutil.copytree(labelled, bad)
+    tifffile.imwrite(bad / "labels" / "labelled_00.tif", np.zeros((3, 8, 8), np.uint8), imagej=True, metadata={"axes": "ZYX"})
+    with pytest.raises(VolumeReadError, match=r"labelled_00.tif.*differ in shape"):
+        load_pairs(bad)
+    (bad / "labels" / "labelled_01.tif").unlink()
+    with pytest.raises(VolumeReadError, match="no matching image/label for labelled_01"):
+        load_pairs(bad)
+    toml = tmp_path / "pairs.toml"
+    toml.write_text(f'[[pair]]\nimage = "{labelled}/images/labelled_00.tif"\nlabel = "{labelled}/labels/labelled_00.tif"\n')
+    assert [p.name for p in load_pairs(toml)] == ["labelled_00"]
+
+
+# ------------------------------------------------------------------------------------- end to end
+
+
+def _helpful_encoder(labelled, tmp_path):
+    """An encoder known to help: a U-Net trained with labels on the same kind of images, whose
+    encoder is written into an encoder file (the manifest of a real, quick export)."""
+    import warmstart as ws
+    from warmstart.corpus.build import build_corpus
+    from warmstart.corpus.settings import CorpusSettings, SamplingSettings
+    from warmstart.export.file import read_encoder_file, write_encoder_file
+    from warmstart.export.pack import encoder_arrays
+    from warmstart.pretrain.loop import pretrain
+    from warmstart.pretrain.settings import PretrainSettings
+    from warmstart.unet import UNet
+
+    import shutil
+
+    (tmp_path / "unlabelled").mkdir()  # pretraining saw one of the two labelled volumes
+    shutil.copy(labelled / "images" / "labelled_01.tif", tmp_path / "unlabelled" / "scan.tif")
+    c = build_corpus(tmp_path / "unlabelled", tmp_path / "c.zarr",
+                     CorpusSettings(sampling=SamplingSettings(patch_size=32, stride=16)), report=False, progress=False).path
+    params = {"base_width": 8, "depth": 3}
+    pretrain(c, tmp_path / "run", PretrainSettings(encoder="unet", encoder_params=params, batch_size=8, max_steps=1,
+                                                   num_workers=0, precision="32-true", accelerator="cpu"), progress=False)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        ws.export_encoder(tmp_path / "run", tmp_path / "quick.safetensors")
+    manifest, _ = read_encoder_file(tmp_path / "quick.safetensors")
+    pairs = load_pairs(labelled)
+    torch.manual_seed(0)
+    net = UNet("unet", 2, **params)
+    opt = torch.optim.Adam(net.parameters(), 3e-3)
+    st = manifest["standardization"]
+    from warmstart.intensity import fit_intensity
+
+    x = np.concatenate([(fit_intensity(p.image).apply(p.image) - st["mean"]) / st["std"] for p in pairs])
+    y = np.concatenate([p.label for p in pairs])
+    rng = np.random.default_rng(0)
+    for _ in range(60):
+        k = rng.integers(len(x), size=8)
+        loss = torch.nn.functional.cross_entropy(net(torch.from_numpy(x[k, None].astype(np.float32))), torch.from_numpy(y[k]))
+        opt.zero_grad()
+        loss.backward()
+        opt.step()
+    write_encoder_file(tmp_path / "helpful.safetensors", encoder_arrays(net.encoder), manifest)
+    return tmp_path / "helpful.safetensors"
+
+
+def test_bench_end_to_end_report_agrees_with_runs_and_resumes(labelled, tmp_path):
+    from warmstart.bench.run import run_bench
+
+    enc = _helpful_encoder(labelled, tmp_path)
+    s = BenchSettings(sizes=[1, 4], seeds=3, frame_size=48, patch_size=32, epochs=3, steps_per_epoch=4, batch_size=4,
+                      val_slices=3, test_slices=4, early_steps=2, lr=2e-3, threads=2)
+    res = run_bench(labelled, [enc], tmp_path / "out", s, progress=False)
+    runs = res["runs"]
+    assert len(runs) == 2 * 2 * 3 and {r["contender"] for r in runs} == {"random", "helpful"}
+    saved = json.loads((tmp_path / "out" / "bench.json").read_text())
+    md = (tmp_path / "out" / "bench.md").read_text()
+    for n in ("1", "4"):
+        for cid in ("random", "helpful"):
+            vals = [r["test_dice"] for r in saved["runs"] if str(r["size"]) == n and r["contender"] == cid]
+            summ = saved["summary"][n][cid]["test_dice"]
+            assert summ["mean"] == pytest.approx(np.mean(vals)) and summ["n"] == 3
+            assert f"{summ['mean']:.3f} [{summ['low']:.3f}, {summ['high']:.3f}]" in md  # the table shows those numbers
+        diff = saved["summary"][n]["helpful"]["vs_random"]["early_dice"]
+        by = {(r["contender"], r["seed"]): r["early_dice"] for r in saved["runs"] if str(r["size"]) == n}
+        assert diff["mean"] == pytest.approx(np.mean([by["helpful", k] - by["random", k] for k in range(3)]))
+    # A supervised encoder of the same task converges faster: early Dice higher on every seed at 1 frame.
+    assert saved["summary"]["1"]["helpful"]["vs_random"]["early_dice"]["wins"] == 3
+    helpful = next(c for c in saved["contenders"] if c["id"] == "helpful")
+    assert helpful["leakage"] == ["labelled_01"] and "tested on data seen in pretraining" in md
+    assert "significant at 95 %" in md and re.search(r"random init \(unet\)", md)
+    html = (tmp_path / "out" / "bench.html").read_text()
+    assert html.count("data:image/png;base64,") == 3
+    # Rerun: every finished run is reused, nothing is retrained, the report is identical.
+    stamp = {p.name: p.stat().st_mtime_ns for p in (tmp_path / "out" / "runs").glob("*.json")}
+    again = run_bench(labelled, [enc], tmp_path / "out", s, progress=False)
+    assert {p.name: p.stat().st_mtime_ns for p in (tmp_path / "out" / "runs").glob("*.json")} == stamp
+    assert again["summary"] == res["summary"]
