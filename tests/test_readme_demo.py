@@ -34,6 +34,9 @@ def test_readme_warmstart_commands_run(tmp_path):
     from warmstart.demo.scenario import write_archive
 
     write_archive(tmp_path / "archive", n_per_scanner=1, shape=(64, 128, 128))
+    from warmstart.demo.scenario import write_labelled_set
+
+    write_labelled_set(tmp_path / "labelled", n=2, shape=(16, 64, 64))
     commands = [line for line in LINES if line.startswith("warmstart ")]
     assert len(commands) >= 8
     for line in commands:
@@ -42,6 +45,8 @@ def test_readme_warmstart_commands_run(tmp_path):
                               capture_output=True, text=True, timeout=300)
         assert proc.returncode == 0, (line, proc.stdout[-1500:], proc.stderr[-1500:])
     assert json.loads((tmp_path / "merged.zarr" / "manifest.json").read_text())["counts"]["sources_ok"] == 4
+    bench = json.loads((tmp_path / "bench" / "bench.json").read_text())
+    assert len(bench["runs"]) == 2 * 2 * 2 and (tmp_path / "bench" / "bench.html").exists()
 
 
 def test_demo_quick_reuses_finished_stages(tmp_path):

@@ -105,9 +105,10 @@ def _model_factory(c: Contender, classes: int, s: BenchSettings) -> Callable[[],
 def _device(s: BenchSettings) -> Any:
     import torch
 
-    if s.device == "cuda" or (s.device == "auto" and torch.cuda.is_available()):
-        return torch.device("cuda")
-    return torch.device("cpu")
+    wanted = s.device
+    if wanted == "auto":
+        wanted = "cuda" if torch.cuda.is_available() else "cpu"
+    return torch.device(wanted)
 
 
 def summarize(runs: list[dict[str, Any]], contenders: list[Contender], s: BenchSettings) -> dict[str, Any]:
