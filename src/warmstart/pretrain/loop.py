@@ -245,9 +245,10 @@ def pretrain(corpus: str | os.PathLike[str], out: str | os.PathLike[str], settin
     trainer.fit_loop.max_epochs = math.ceil(total / steps_per_epoch)
     position.steps_per_epoch = steps_per_epoch
     channels = int(store.patches.shape[1])
-    (out / "recipe.json").write_text(json.dumps({"pretrain": s.to_dict(), "corpus": str(store.path)}, indent=1))
-    # The corpus manifest travels with the run, so an export works after the corpus has moved.
-    (out / "corpus-manifest.json").write_text(json.dumps(store.manifest, indent=1))
+    if first_process:  # one writer under DDP
+        (out / "recipe.json").write_text(json.dumps({"pretrain": s.to_dict(), "corpus": str(store.path)}, indent=1))
+        # The corpus manifest travels with the run, so an export works after the corpus has moved.
+        (out / "corpus-manifest.json").write_text(json.dumps(store.manifest, indent=1))
     module = PretrainModule(s.to_dict(), channels, total, _standardization(store.manifest, s))
     if resume:
         # Lightning makes the data iterator of the resumed epoch before any epoch hook runs, so
