@@ -5,7 +5,7 @@ import dataclasses
 from dataclasses import dataclass, field
 from typing import Any, Mapping
 
-from ..corpus.settings import settings_from_dict
+from ..corpus.settings import require_positive, settings_from_dict
 from ..errors import RecipeError
 
 __all__ = ["BenchSettings"]
@@ -85,10 +85,8 @@ class BenchSettings:
         if not self.sizes or any(int(n) < 1 for n in self.sizes):
             raise RecipeError(f"bench.sizes must be a non-empty list of positive frame counts, got {self.sizes}")
         self.sizes = sorted({int(n) for n in self.sizes})
-        for name in ("seeds", "frame_size", "patch_size", "epochs", "steps_per_epoch", "batch_size", "test_slices",
-                     "val_slices", "early_steps"):
-            if getattr(self, name) < 1:
-                raise RecipeError(f"bench.{name} must be >= 1, got {getattr(self, name)}")
+        require_positive(self, "bench", "seeds", "frame_size", "patch_size", "epochs", "steps_per_epoch", "batch_size",
+                         "test_slices", "val_slices", "early_steps")
         if self.patch_size > self.frame_size:
             raise RecipeError(f"bench.patch_size {self.patch_size} is larger than bench.frame_size {self.frame_size}")
         if not self.lr > 0 or self.encoder_lr_factor < 0 or self.gap_slices < 0 or self.freeze_encoder_epochs < 0:

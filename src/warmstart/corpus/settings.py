@@ -14,7 +14,8 @@ from typing import Any, Mapping
 from ..errors import RecipeError
 from ..intensity import IntensitySettings
 
-__all__ = ["ReadSettings", "SamplingSettings", "FilterSettings", "StoreSettings", "CorpusSettings", "settings_from_dict"]
+__all__ = ["ReadSettings", "SamplingSettings", "FilterSettings", "StoreSettings", "CorpusSettings", "settings_from_dict",
+           "require_positive"]
 
 
 @dataclass(frozen=True)
@@ -92,11 +93,7 @@ class SamplingSettings:
             raise RecipeError(f"sampling.mode must be 'grid' or 'random', got {self.mode!r}")
         if not self.scale_factor > 0 or (self.target_voxel_um is not None and not self.target_voxel_um > 0):
             raise RecipeError("sampling.scale_factor and sampling.target_voxel_um must be positive")
-        for name in ("slice_stride", "count", "max_per_source"):
-            if getattr(self, name) < 1:
-                raise RecipeError(f"sampling.{name} must be >= 1, got {getattr(self, name)}")
-        if self.stride is not None and self.stride < 1:
-            raise RecipeError(f"sampling.stride must be >= 1, got {self.stride}")
+        require_positive(self, "sampling", "slice_stride", "count", "max_per_source", "stride")
 
 
 @dataclass(frozen=True)
@@ -274,6 +271,14 @@ def _check_type(value: Any, hint: Any, key: str) -> Any:
             raise RecipeError(f"{key} must be a string, got {value!r}")
         return value
     return value
+
+
+def require_positive(obj: Any, section: str, *names: str) -> None:
+    """Refuse any of the named integer settings below 1 (``None``, where allowed, passes)."""
+    for name in names:
+        value = getattr(obj, name)
+        if value is not None and value < 1:
+            raise RecipeError(f"{section}.{name} must be >= 1, got {value}")
 
 
 def settings_from_dict(cls: Any, d: Mapping[str, Any], where: str) -> Any:

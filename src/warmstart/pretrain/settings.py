@@ -8,7 +8,7 @@ import dataclasses
 from dataclasses import dataclass, field
 from typing import Any, Mapping
 
-from ..corpus.settings import settings_from_dict
+from ..corpus.settings import require_positive, settings_from_dict
 from ..errors import RecipeError
 
 __all__ = ["PretrainSettings", "ViewSettings"]
@@ -162,11 +162,7 @@ class PretrainSettings:
     standardize: bool = True
 
     def __post_init__(self) -> None:
-        for name in ("batch_size", "epochs", "checkpoint_every", "num_nodes"):
-            if getattr(self, name) < 1:
-                raise RecipeError(f"pretrain.{name} must be >= 1, got {getattr(self, name)}")
-        if self.max_steps is not None and self.max_steps < 1:
-            raise RecipeError(f"pretrain.max_steps must be >= 1, got {self.max_steps}")
+        require_positive(self, "pretrain", "batch_size", "epochs", "checkpoint_every", "num_nodes", "max_steps")
         if not self.lr > 0 or self.weight_decay < 0 or not 0 <= self.warmup_fraction < 1:
             raise RecipeError("pretrain.lr must be > 0, weight_decay >= 0 and 0 <= warmup_fraction < 1")
         if self.precision not in ("auto", "32-true", "32", "16-mixed", "bf16-mixed"):
