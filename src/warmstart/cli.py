@@ -19,13 +19,24 @@ CLINICAL_CAUTION = (
 EXIT_ERROR = 1
 
 
-def _add_recipe_options(p: argparse.ArgumentParser) -> None:
+def _add_recipe_options(p: argparse.ArgumentParser, names: str = "smoke, cpu-lowres, ...",
+                        example: str = "sampling.axes=ZYX", read_options: bool = True) -> None:
+    """``--recipe`` and ``--set`` (and, for commands that read volumes, ``--rgb``/``--channel``)."""
     g = p.add_argument_group("recipe")
-    g.add_argument("--recipe", metavar="FILE", help="recipe TOML file or shipped recipe name (smoke, cpu-lowres, ...)")
+    g.add_argument("--recipe", metavar="FILE", help=f"recipe TOML file or shipped recipe name ({names})")
     g.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE",
-                   help="override any recipe key, e.g. --set sampling.axes=ZYX (repeatable)")
-    g.add_argument("--rgb", choices=["refuse", "luminance"], help="colour files: refuse (default) or convert to luminance")
-    g.add_argument("--channel", type=int, metavar="N", help="channel to read from multi-channel files")
+                   help=f"override any recipe key, e.g. --set {example} (repeatable)")
+    if read_options:
+        g.add_argument("--rgb", choices=["refuse", "luminance"], help="colour files: refuse (default) or convert to luminance")
+        g.add_argument("--channel", type=int, metavar="N", help="channel to read from multi-channel files")
+
+
+def _int_list(text: str) -> list[int]:
+    """``1,4,16`` -> [1, 4, 16] (for list-valued shortcut flags)."""
+    try:
+        return [int(v) for v in text.split(",") if v.strip()]
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected comma-separated integers, got {text!r}") from None
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -78,10 +89,7 @@ def build_parser() -> argparse.ArgumentParser:
                                      "run folder RUN gets the resolved recipe, checkpoints, history.csv and summary.json.")
     pre.add_argument("corpus", metavar="CORPUS")
     pre.add_argument("-o", "--output", required=True, metavar="RUN", help="run folder")
-    g = pre.add_argument_group("recipe")
-    g.add_argument("--recipe", metavar="FILE", help="recipe TOML file or shipped recipe name")
-    g.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE",
-                   help="override any recipe key, e.g. --set pretrain.lr=3e-4 (repeatable)")
+    _add_recipe_options(pre, "smoke, cpu-lowres, gpu-resnet50-moco, ...", "pretrain.lr=3e-4", read_options=False)
     g = pre.add_argument_group("common settings (shortcuts for --set)")
     g.add_argument("--method", choices=["simclr", "moco_v2", "byol"])
     g.add_argument("--encoder", metavar="NAME", help="resnet_narrow, resnet18, resnet34, resnet50, unet")
@@ -124,12 +132,9 @@ def build_parser() -> argparse.ArgumentParser:
     bench.add_argument("labels", metavar="LABELS", help="folder with images/ and labels/, or a TOML file of pairs")
     bench.add_argument("--encoder", action="append", default=[], metavar="FILE", help="an encoder file (repeatable)")
     bench.add_argument("-o", "--output", required=True, metavar="OUT", help="report folder")
-    g = bench.add_argument_group("recipe")
-    g.add_argument("--recipe", metavar="FILE", help="recipe TOML file or shipped recipe name (bench-cpu, bench-gpu)")
-    g.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE",
-                   help="override any recipe key, e.g. --set bench.lr=3e-4 (repeatable)")
+    _add_recipe_options(bench, "bench-cpu, bench-gpu", "bench.lr=3e-4", read_options=False)
     g = bench.add_argument_group("common settings (shortcuts for --set)")
-    g.add_argument("--sizes", metavar="N,N,...", help="training-set sizes in frames, e.g. 1,4,16")
+    g.add_argument("--sizes", type=_int_list, metavar="N,N,...", help="training-set sizes in frames, e.g. 1,4,16")
     g.add_argument("--seeds", type=int, help="replicates per contender and size")
     g.add_argument("--epochs", type=int)
     bench.add_argument("--json", action="store_true")
@@ -357,19 +362,15 @@ def cmd_inspect(args: argparse.Namespace) -> int:
     return 0
 
 
+_BENCH_SHORTCUTS = {"sizes": "sizes", "seeds": "seeds", "epochs": "epochs"}
+
+
 def cmd_bench(args: argparse.Namespace) -> int:
     from pathlib import Path
 
     from .recipe import load_recipe
 
-    overrides = list(args.overrides)
-    if args.sizes:
-        overrides.append(f"bench.sizes=[{args.sizes}]")
-    if args.seeds is not None:
-        overrides.append(f"bench.seeds={args.seeds}")
-    if args.epochs is not None:
-        overrides.append(f"bench.epochs={args.epochs}")
-    recipe = load_recipe(args.recipe, overrides, default_section="bench")
+    recipe = load_recipe(args.recipe, _overrides(args, _BENCH_SHORTCUTS, "bench."), default_section="bench")
     try:
         from .bench.run import run_bench
     except ImportError as err:
