@@ -147,11 +147,14 @@ class WarmStartReport:
         return "\n".join(lines)
 
 
-def _plan(layout: Layout, ours: dict[str, Any], theirs: dict[str, Any], first_conv: str, file: str) -> WarmStartReport:
+Plan = tuple[WarmStartReport, dict[str, Any]]  # the report, and the tensors to copy by target key
+
+
+def _plan(layout: Layout, ours: dict[str, Any], theirs: dict[str, Any], first_conv: str, file: str) -> Plan:
     import torch
 
     rep = WarmStartReport(str(file), layout.name)
-    rep._copy = {}  # type: ignore[attr-defined]
+    copy: dict[str, Any] = {}
     first = first_conv + ".weight"
     for k, v in ours.items():
         tk = layout.map_key(k)
@@ -167,22 +170,23 @@ def _plan(layout: Layout, ours: dict[str, Any], theirs: dict[str, Any], first_co
             else:
                 rep.mismatched.append((tk, tuple(src.shape), tuple(t.shape)))
                 continue
-        rep._copy[tk] = src.to(t.dtype)  # type: ignore[attr-defined]
+        copy[tk] = src.to(t.dtype)
         rep.loaded.append(tk)
     region = [k for k in theirs if layout.in_encoder(k)]
     loaded = set(rep.loaded)
+    misshapen = {m[0] for m in rep.mismatched}
     for k in region:
         if k in loaded:
             continue
         if k.endswith(".bias") and k[:-5] + ".weight" in loaded and theirs[k].ndim == 1 \
                 and theirs[k[:-5] + ".weight"].ndim == 4:
-            rep._copy[k] = torch.zeros_like(theirs[k])  # type: ignore[attr-defined]
+            copy[k] = torch.zeros_like(theirs[k])
             rep.zero_filled.append(k)
-        elif k not in {m[0] for m in rep.mismatched}:
+        elif k not in misshapen:
             rep.missing.append(k)
     rep.untouched = len(theirs) - len(region)
     rep.hint = layout.hint
-    return rep
+    return rep, copy
 
 
 def _library(model: Any) -> str:
@@ -190,7 +194,7 @@ def _library(model: Any) -> str:
 
 
 def _choose(model: Any, ours: dict[str, Any], theirs: dict[str, Any], fam: str, first_conv: str, file: str,
-            layout: str) -> WarmStartReport:
+            layout: str) -> Plan:
     if layout != "auto":
         if layout not in LAYOUTS:
             raise WarmStartError(f"unknown layout {layout!r}; known: auto, {', '.join(LAYOUTS)}")
@@ -207,8 +211,9 @@ def _choose(model: Any, ours: dict[str, Any], theirs: dict[str, Any], fam: str, 
     def named(p: WarmStartReport) -> int:
         return len(p.loaded) + len(p.mismatched)
 
-    best = max(range(len(plans)), key=lambda i: (named(plans[i]) - len(plans[i].missing), cands[i].library == lib, -i))
-    if not named(plans[best]):
+    reports = [r for r, _ in plans]
+    best = max(range(len(plans)), key=lambda i: (named(reports[i]) - len(reports[i].missing), cands[i].library == lib, -i))
+    if not named(reports[best]):
         sample = ", ".join(list(theirs)[:3])
         raise WarmStartError(f"{file}: no layout places any of its {len(ours)} tensors in {type(model).__name__} "
                              f"(its keys look like {sample}); pass layout= one of {', '.join(LAYOUTS)}")
@@ -247,8 +252,7 @@ def warm_start(model: Any, file: str | os.PathLike[str], layout: str = "auto", s
     manifest, ours = read_encoder_file(file)
     fam = family(manifest["encoder"]["spec"]["name"])
     theirs = model.state_dict()
-    rep = _choose(model, ours, theirs, fam, manifest["encoder"]["first_conv"], str(file), layout)
-    copy = rep.__dict__.pop("_copy")
+    rep, copy = _choose(model, ours, theirs, fam, manifest["encoder"]["first_conv"], str(file), layout)
     if strict and not rep.complete:
         raise WarmStartError(f"{rep}\n(strict: nothing was copied; pass strict=False to load what fits)")
     with torch.no_grad():
