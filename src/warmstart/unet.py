@@ -47,8 +47,11 @@ class UNetDecoder(nn.Module):
         for i in range(len(ch) - 2, -1, -1):  # deepest-but-one up to the shallowest
             self.blocks.append(DoubleConv(width + ch[i], ch[i], norm))
             width = ch[i]
-        self.final = DoubleConv(width, max(width // 2, 8), norm) if self.strides[0] > 1 else None
-        self.out_channels = max(width // 2, 8) if self.final is not None else width
+        if self.strides[0] > 1:  # one more level at full resolution
+            self.out_channels = max(width // 2, 8)
+            self.final: DoubleConv | None = DoubleConv(width, self.out_channels, norm)
+        else:
+            self.out_channels, self.final = width, None
 
     def forward(self, feats: Sequence[torch.Tensor], size: tuple[int, int]) -> torch.Tensor:
         x = feats[-1]
