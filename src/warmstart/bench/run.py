@@ -43,8 +43,10 @@ def _spec_key(spec: dict[str, Any]) -> str:
                       sort_keys=True)
 
 
-def _contenders(encoders: Sequence[str | os.PathLike[str]], s: BenchSettings) -> list[Contender]:
-    from ..export.card import _intensity_line
+def _contenders(encoders: Sequence[str | os.PathLike[str]], s: BenchSettings, pairs: list[Any]) -> list[Contender]:
+    """Random init per architecture, then each file (its own normalization; leakage: the labelled
+    volumes whose sha256 is among the file's corpus sources)."""
+    from ..export.card import intensity_line
     from ..export.file import read_manifest
 
     files = []
@@ -72,9 +74,11 @@ def _contenders(encoders: Sequence[str | os.PathLike[str]], s: BenchSettings) ->
         cid = stem if stem not in seen and not stem.startswith("random") else f"{stem}-{len(seen)}"
         seen.add(cid)
         st = m["standardization"]
+        known = {p["sha256"] for p in m["corpus"]["provenance"]}
         out.append(Contender(cid, f"warm start {Path(f).name}", m["encoder"]["spec"], f,
                              randoms[_spec_key(m["encoder"]["spec"])],
-                             f"{_intensity_line(m)}, then (x - {st['mean']:.4g}) / {st['std']:.4g} (from the file)"))
+                             f"{intensity_line(m)}, then (x - {st['mean']:.4g}) / {st['std']:.4g} (from the file)",
+                             leakage=[p.name for p in pairs if p.sha256 in known]))
     return out
 
 
@@ -146,8 +150,7 @@ def summarize(runs: list[dict[str, Any]], contenders: list[Contender], s: BenchS
 
 
 def run_bench(labels: str | os.PathLike[str], encoders: Sequence[str | os.PathLike[str]], out: str | os.PathLike[str],
-              settings: BenchSettings | None = None, *, progress: bool = True,
-              echo: Callable[[str], None] = lambda _m: None) -> dict[str, Any]:
+              settings: BenchSettings | None = None, *, progress: bool = True) -> dict[str, Any]:
     """Fine-tune random initialization and every encoder file on the same labelled frames.
 
     Parameters
@@ -178,14 +181,8 @@ def run_bench(labels: str | os.PathLike[str], encoders: Sequence[str | os.PathLi
     pairs = load_pairs(labels, s.ignore_label)
     classes = n_classes(pairs, s.ignore_label)
     split = make_split(pairs, s)
-    contenders = _contenders(encoders, s)
+    contenders = _contenders(encoders, s, pairs)
     labs = [p.label for p in pairs]
-    for c in contenders:
-        if c.file:
-            from ..export.file import read_manifest
-
-            known = {p["sha256"] for p in read_manifest(c.file)["corpus"]["provenance"]}
-            c.leakage = [p.name for p in pairs if p.sha256 in known]
     device = _device(s)
     planned = [(n, seed, c) for n in s.sizes for seed in range(s.seeds) for c in contenders]
     prepared: dict[str, list[np.ndarray]] = {}

@@ -3,7 +3,7 @@ from __future__ import annotations
 
 from typing import Any, Mapping
 
-__all__ = ["summary_text", "model_card", "CLINICAL_CAUTION"]
+__all__ = ["summary_text", "model_card", "intensity_line", "CLINICAL_CAUTION"]
 
 CLINICAL_CAUTION = ("For research use only; not for diagnosis or treatment. Any clinical use is subject to local "
                     "regulation and must be overseen by qualified practitioners.")
@@ -13,7 +13,8 @@ def _fmt(x: Any, digits: int = 4) -> str:
     return "n/a" if x is None else (f"{x:.{digits}g}" if isinstance(x, float) else str(x))
 
 
-def _intensity_line(m: Mapping[str, Any]) -> str:
+def intensity_line(m: Mapping[str, Any]) -> str:
+    """The manifest's intensity rule in words (scheme, values, fitted per volume or fixed)."""
     rule = m["intensity"]["rule"]
     scheme = rule["scheme"]
     if scheme == "percentile":
@@ -42,7 +43,7 @@ def summary_text(m: Mapping[str, Any]) -> str:
         f"stages      {stages}  (channels@stride)",
         f"input       {m['input']['channels']} channel(s), patches of {m['input']['patch_size']} px, "
         f"voxel size {('%.4g-%.4g um' % tuple(rng)) if rng else 'unknown'}",
-        f"intensity   {_intensity_line(m)}",
+        f"intensity   {intensity_line(m)}",
         f"standardize (x - {st['mean']:.5g}) / {st['std']:.5g}",
         f"corpus      {c['sources']} sources ({', '.join(f'{k} {n}' for k, n in sorted(c['formats'].items()))}), "
         f"{c['patches']:,} patches; modalities: {', '.join(c['modalities']) or 'n/a'}",
@@ -91,7 +92,7 @@ unlabeled images, meant as the warm start of a segmentation network (U-Net encod
 
 ## How to feed it
 
-1. Intensity rule: {_intensity_line(m)}.
+1. Intensity rule: {intensity_line(m)}.
 2. Standardization: `(x - {st['mean']:.6g}) / {st['std']:.6g}`.
 3. Voxel size near the patches' (see above), {m['input']['channels']} input channel(s).
 
