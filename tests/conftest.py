@@ -22,6 +22,21 @@ def textured(shape=(12, 48, 56), dtype=np.uint16, seed=0, lo=1000, hi=30000):
     return out.astype(dtype)
 
 
+TINY_SAMPLING = dict(patch_size=32, stride=16, slice_stride=1, max_per_source=10_000)
+
+
+def tiny_corpus(root: Path, n: int = 3, shape=(16, 64, 64), sampling: dict | None = None) -> Path:
+    """A corpus of ``n`` textured ``.npy`` volumes (in ``root/a``), built into ``root/c.zarr``."""
+    from warmstart.corpus.build import build_corpus
+    from warmstart.corpus.settings import CorpusSettings, SamplingSettings
+
+    (root / "a").mkdir(parents=True)
+    for i in range(n):
+        np.save(root / "a" / f"v{i}.npy", textured(shape=shape, seed=i))
+    s = CorpusSettings(sampling=SamplingSettings(**(TINY_SAMPLING if sampling is None else sampling)))
+    return build_corpus(root / "a", root / "c.zarr", s, report=False, progress=False).path
+
+
 def write_dicom_series(folder: Path, hu: np.ndarray, *, spacing_mm=(2.5, 0.5, 0.5), slope=1.0, intercept=-1024.0,
                        series_uid=None, shuffle_names=True, seed=0, prefix="img") -> list[Path]:
     """Write a CT series with pydicom, using pydicom's CT_small.dcm test file as the template.

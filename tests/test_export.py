@@ -17,8 +17,6 @@ import pytest
 import torch
 
 import warmstart as ws
-from warmstart.corpus.build import build_corpus
-from warmstart.corpus.settings import CorpusSettings, SamplingSettings
 from warmstart.errors import DataMismatchWarning, ExportError, WarmStartError
 from warmstart.export.file import read_encoder_file, read_manifest, write_encoder_file
 from warmstart.export.load import adapt_input_channels
@@ -30,14 +28,9 @@ QUIET = dict(batch_size=16, num_workers=0, precision="32-true", accelerator="cpu
 
 @pytest.fixture(scope="module")
 def corpus(tmp_path_factory):
-    from conftest import textured
+    from conftest import tiny_corpus
 
-    root = tmp_path_factory.mktemp("exp")
-    (root / "a").mkdir()
-    for i in range(3):
-        np.save(root / "a" / f"v{i}.npy", textured(shape=(16, 64, 64), seed=i))
-    s = CorpusSettings(sampling=SamplingSettings(patch_size=32, stride=16, slice_stride=1, max_per_source=10_000))
-    return build_corpus(root / "a", root / "c.zarr", s, report=False, progress=False).path
+    return tiny_corpus(tmp_path_factory.mktemp("exp"))
 
 
 _RUNS: dict = {}

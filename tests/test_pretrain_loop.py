@@ -16,8 +16,6 @@ import pytest
 
 torch = pytest.importorskip("torch")
 
-from warmstart.corpus.build import build_corpus  # noqa: E402
-from warmstart.corpus.settings import CorpusSettings, SamplingSettings  # noqa: E402
 from warmstart.errors import PretrainError  # noqa: E402
 from warmstart.pretrain.loop import pretrain  # noqa: E402
 from warmstart.pretrain.methods import register_method  # noqa: E402
@@ -48,14 +46,9 @@ class _Collapsed(SimCLR):
 
 @pytest.fixture(scope="module")
 def corpus(tmp_path_factory):
-    from conftest import textured
+    from conftest import tiny_corpus
 
-    root = tmp_path_factory.mktemp("pre")
-    (root / "a").mkdir()
-    for i in range(3):
-        np.save(root / "a" / f"v{i}.npy", textured(shape=(16, 64, 64), seed=i))
-    s = CorpusSettings(sampling=SamplingSettings(patch_size=32, stride=16, slice_stride=1, max_per_source=10_000))
-    return build_corpus(root / "a", root / "c.zarr", s, report=False, progress=False).path
+    return tiny_corpus(tmp_path_factory.mktemp("pre"))
 
 
 FAST = dict(encoder_params={"base_width": 8}, batch_size=32, num_workers=0, checkpoint_every=5, deterministic=True,

@@ -80,22 +80,15 @@ PYTHON_BLOCKS = re.findall(r"```python\n(.*?)```", README, flags=re.S)
 def test_readme_python_snippets_run(tmp_path, monkeypatch):
     import warnings
 
-    import numpy as np
     import tifffile
-    from conftest import textured
+    from conftest import textured, tiny_corpus
 
     import warmstart as ws
     from warmstart.errors import DataMismatchWarning
-    from warmstart.corpus.build import build_corpus
-    from warmstart.corpus.settings import CorpusSettings, SamplingSettings
     from warmstart.pretrain.loop import pretrain
     from warmstart.pretrain.settings import PretrainSettings
 
-    (tmp_path / "a").mkdir()
-    for i in range(2):
-        np.save(tmp_path / "a" / f"v{i}.npy", textured(shape=(8, 64, 64), seed=i))
-    corpus = build_corpus(tmp_path / "a", tmp_path / "c.zarr", CorpusSettings(sampling=SamplingSettings(patch_size=32, stride=16)),
-                          report=False, progress=False).path
+    corpus = tiny_corpus(tmp_path, n=2, shape=(8, 64, 64), sampling=dict(patch_size=32, stride=16))
     quick = dict(batch_size=8, max_steps=1, num_workers=0, precision="32-true", accelerator="cpu")
     for name, enc in (("encoder", "resnet18"), ("unet-encoder", "unet")):
         pretrain(corpus, tmp_path / name, PretrainSettings(encoder=enc, **quick), progress=False)
