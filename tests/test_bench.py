@@ -204,3 +204,28 @@ def test_bench_end_to_end_report_agrees_with_runs_and_resumes(labelled, tmp_path
     again = run_bench(labelled, [enc], tmp_path / "out", s, progress=False)
     assert {p.name: p.stat().st_mtime_ns for p in (tmp_path / "out" / "runs").glob("*.json")} == stamp
     assert again["summary"] == res["summary"]
+
+
+@pytest.mark.parametrize("option", [{"freeze_encoder_epochs": 2}, {"encoder_lr_factor": 0.0}])
+def test_frozen_encoder_and_encoder_lr_factor_keep_the_encoder_weights(labelled, option):
+    from warmstart.bench.train import fine_tune
+    from warmstart.intensity import fit_intensity
+    from warmstart.unet import UNet
+
+    s = BenchSettings(sizes=[1], frame_size=48, patch_size=32, epochs=2, steps_per_epoch=2, batch_size=2,
+                      val_slices=2, test_slices=2, early_steps=1, **option)
+    pairs = load_pairs(labelled)
+    split = make_split(pairs, s)
+    built = []
+
+    def make():
+        built.append(UNet("unet", 2, base_width=4, depth=3))
+        built.append({k: v.clone() for k, v in built[0].named_parameters()})
+        return built[0]
+
+    images = [fit_intensity(p.image).apply(p.image) for p in pairs]
+    fine_tune(make, images, [p.label for p in pairs], split, 1, 0, 2, s, torch.device("cpu"))
+    net, before = built
+    after = dict(net.named_parameters())
+    assert all(torch.equal(before[k], after[k]) for k in before if k.startswith("encoder."))
+    assert any(not torch.equal(before[k], after[k]) for k in before if k.startswith("decoder."))
