@@ -46,6 +46,16 @@ def test_downscale_factors_from_target_and_unknown():
     assert any("upsampling" in n for n in notes) is False  # 0.5 is exactly 2x: allowed without a note
 
 
+def test_isotropic_factors_make_fibsem_voxels_cubic_without_upsampling():
+    # A FIB-SEM stack: 20 nm sections, 10 nm pixels. Output voxels must be cubic (20 nm x scale).
+    s = SamplingSettings(scale_factor=2.0, isotropic=True)
+    f, notes = downscale_factors((0.02, 0.01, 0.01), s)
+    assert f == pytest.approx((2.0, 4.0, 4.0)) and not notes
+    assert {round(v * k, 9) for v, k in zip((0.02, 0.01, 0.01), f)} == {0.04}
+    assert downscale_factors((None, 0.01, 0.01), s)[0] == (2.0, 2.0, 2.0)  # unknown axis: plain factor
+    assert downscale_factors((3.0, 3.0, 3.0), s)[0] == (2.0, 2.0, 2.0)
+
+
 # --- planning --------------------------------------------------------------------------------
 def test_grid_plan_geometry_and_centring():
     s = SamplingSettings(patch_size=16, slice_stride=4, max_per_source=10_000)

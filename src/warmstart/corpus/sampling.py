@@ -32,10 +32,16 @@ def downscale_factors(voxel_size_um: tuple[float | None, ...], s: SamplingSettin
     """Per-axis downscale factors (Z, Y, X) and notes on what could not be honoured.
 
     With ``target_voxel_um`` and a known voxel size, ``f = target / voxel``; an axis of unknown
-    size takes ``scale_factor`` and a note says so.
+    size takes ``scale_factor`` and a note says so. Without a target, ``isotropic`` and all three
+    sizes known: ``f = scale_factor * max(voxel) / voxel`` (cubic output voxels, no upsampling).
     """
     notes: list[str] = []
     out = []
+    known = [v for v in voxel_size_um if v is not None]
+    if s.target_voxel_um is None and s.isotropic and len(known) == 3 and min(known) > 0:
+        coarsest = max(known)
+        out = [s.scale_factor * coarsest / v for v in known]
+        return (out[0], out[1], out[2]), notes
     for ax, v in zip("ZYX", voxel_size_um):
         if s.target_voxel_um is not None and v is not None:
             out.append(s.target_voxel_um / v)

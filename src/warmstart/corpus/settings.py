@@ -57,6 +57,11 @@ class SamplingSettings:
         Resample every source to this voxel size (µm) where its voxel size is known.
     scale_factor : float
         Downscale factor used where no target is set or a voxel size is unknown (2 = half size).
+    isotropic : bool
+        Without a target: make anisotropic voxels cubic by downscaling the finer axes to the
+        coarsest one (``scale_factor * coarsest / voxel`` per axis, so nothing is upsampled); for
+        FIB-SEM stacks whose sections are thicker than their pixels. Sources of unknown or
+        isotropic voxel size are unaffected.
     mode : {"grid", "random"}
         Regular grid (``stride``, ``slice_stride``) or ``count`` random positions per source.
     stride : int, optional
@@ -75,6 +80,7 @@ class SamplingSettings:
     channels: int = 1
     target_voxel_um: float | None = None
     scale_factor: float = 1.0
+    isotropic: bool = False
     mode: str = "grid"
     stride: int | None = None
     slice_stride: int = 8
