@@ -1,129 +1,154 @@
-"""A ceramics lab's archive: micro-CT scans of sintered ceramic filters from three scanners.
+"""The demo's archive: a shared imaging facility's scans from two labs, in the formats they arrived in.
 
-Physics, kept simple but not flat noise:
+- **A ceramics lab's sintered alumina filters** (with zirconia inclusions), scanned by four
+  micro-CT instruments at three voxel sizes: a monochromatic beamline (1 µm, float32 MRC, no beam
+  hardening, high flux), two lab scanners at 2.5 µm (uint16 TIFF stack and uint16 OME-Zarr, each
+  with its own gain and offset) and an older lab scanner at 6 µm (uint8 PNG slice folder, few
+  projections, low flux). The grains have the same physical size (mean radius 12 µm), so they
+  span 12, 5 and 2 voxels: the voxel sizes matter. CT physics: :mod:`warmstart.demo.ct`.
+- **A battery group's cathode** (active-material particles, carbon-binder, resin-filled pores),
+  FIB-SEM stacks with 10 nm pixels and 20 nm sections (uint8 TIFF). Physics:
+  :mod:`warmstart.demo.fibsem`.
 
-- **Microstructure.** Sintered grains are a random close packing approximated by sequential
-  random placement of spheres with log-normally distributed radii (overlaps allowed: sintering
-  necks); the remaining space holds pores. A smooth random field modulates the grain density
-  (density gradients from pressing).
-- **Imaging.** Attenuation is 1 in grains and 0.15 in pores (air with binder residue); the
-  scanner's point spread function is a Gaussian blur; noise is signal-dependent (standard
-  deviation proportional to the square root of the signal, as for photon counting); a
-  beam-hardening "cupping" term darkens the centre of each slice and ring artefacts add a small
-  radius-dependent offset; the raw value is ``offset + gain * signal`` in the scanner's type.
-- **Scanners.** Each has its own gain, offset, bit depth, voxel size (2, 5 and 12 µm) and file
-  format, so the archive needs the corpus stage's intensity normalization to be used together.
+Microstructures: :mod:`warmstart.demo.microstructure`. Raw values are ``offset + gain * signal``
+rounded and clipped to the instrument's type. Everything is deterministic for a seed.
 
-The generator is deterministic for a seed. Sizes are small so the demo runs on a laptop.
+The labelled set for the benchmark (:func:`write_labelled_set`) is new filters from one lab
+scanner, generated from another seed and never part of the archive; its labels are the
+ground-truth phases.
 """
 from __future__ import annotations
 
 import os
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 
-__all__ = ["Scanner", "SCANNERS", "filter_microstructure", "scan", "write_archive"]
+from .ct import CTSettings, core_mask, simulate_ct
+from .fibsem import FIBSEMSettings, simulate_fibsem
+from .microstructure import cathode_microstructure, filter_microstructure
+
+__all__ = ["Instrument", "INSTRUMENTS", "GRAIN_RADIUS_UM", "PARTICLE_RADIUS_UM", "image", "write_archive",
+           "write_labelled_set"]
+
+GRAIN_RADIUS_UM = 12.0
+"""Mean alumina grain radius of the filters (µm)."""
+PARTICLE_RADIUS_UM = 0.08
+"""Mean active-material particle radius of the cathode (µm)."""
 
 
 @dataclass(frozen=True)
-class Scanner:
-    """One instrument of the lab (all intensities in its raw units)."""
-
-    name: str
-    voxel_um: float
-    gain: float
-    offset: float
-    noise: float
-    blur_voxels: float
-    dtype: str
-    fmt: str
-
-
-SCANNERS = (
-    Scanner("benchtop-a", 2.0, 21000.0, 6000.0, 0.05, 1.0, "uint16", "tiff"),
-    Scanner("benchtop-b", 5.0, 140.0, 40.0, 0.06, 0.8, "uint8", "slices"),
-    Scanner("synchrotron", 12.0, 1.3, -0.2, 0.03, 0.6, "float32", "mrc"),
-    Scanner("benchtop-c", 5.0, 30000.0, 9000.0, 0.04, 1.2, "uint16", "ome-zarr"),
-)
-
-
-def filter_microstructure(shape: tuple[int, int, int], rng: np.random.Generator, porosity: float = 0.35,
-                          mean_radius: float = 6.0) -> np.ndarray:
-    """Grain (1) / pore (0) volume of a sintered filter.
+class Instrument:
+    """One instrument of the facility (raw value = ``offset + gain * signal``).
 
     Parameters
     ----------
-    shape : (Z, Y, X)
-    rng : numpy.random.Generator
-    porosity : float
-        Pore fraction (exact up to ties).
-    mean_radius : float
-        Mean grain radius in voxels.
-
-    Returns
-    -------
-    (Z, Y, X) float32 ndarray in {0, 1}
+    name : str
+        Folder name in the archive.
+    voxel_um : (float, float, float)
+        Voxel size (Z, Y, X) in micrometres.
+    gain, offset : float
+        Raw-value mapping.
+    dtype : str
+        Stored type.
+    fmt : {"tiff", "slices", "mrc", "ome-zarr"}
+    ct, fibsem : settings of the modality (exactly one is set)
     """
-    from scipy.ndimage import distance_transform_edt, gaussian_filter
 
-    seeds = np.ones(shape, dtype=bool)
-    density = gaussian_filter(rng.standard_normal(shape), sigma=min(shape) / 6)
-    density = 1.0 + 0.5 * density / (np.abs(density).max() + 1e-9)
-    n = int(np.prod(shape) * (1 - porosity) / (4 / 3 * np.pi * mean_radius**3) * 2.0)
-    centres = (rng.random((n, 3)) * np.array(shape)).astype(int)
-    keep = rng.random(n) < density[tuple(centres.T)] / density.max()
-    seeds[tuple(centres[keep].T)] = False
-    dist = distance_transform_edt(seeds)
-    radii_field = gaussian_filter(rng.lognormal(np.log(mean_radius), 0.25, size=shape), 2)
-    # Grow every grain by the same margin until the pore fraction is the one asked for.
-    margin = dist - radii_field * 0.8
-    grains = margin < np.quantile(margin, 1.0 - porosity)
-    return grains.astype(np.float32)
+    name: str
+    voxel_um: tuple[float, float, float]
+    gain: float
+    offset: float
+    dtype: str
+    fmt: str
+    ct: CTSettings | None = None
+    fibsem: FIBSEMSettings | None = field(default=None)
+
+    @property
+    def modality(self) -> str:
+        return "micro-CT" if self.ct is not None else "FIB-SEM"
 
 
-def scan(structure: np.ndarray, scanner: Scanner, rng: np.random.Generator) -> np.ndarray:
-    """Image a microstructure with one scanner: blur, cupping, rings, Poisson-like noise, quantization."""
-    from scipy.ndimage import gaussian_filter
+INSTRUMENTS = (
+    Instrument("beamline", (1.0, 1.0, 1.0), 0.8, 0.05, "float32", "mrc",
+               ct=CTSettings(n_angles=240, photons=20000.0, beam_hardening=0.0, ring_strength=0.006)),
+    Instrument("lab-ct-a", (2.5, 2.5, 2.5), 16000.0, 9000.0, "uint16", "tiff",
+               ct=CTSettings(n_angles=180, photons=800.0, beam_hardening=0.08, ring_strength=0.004)),
+    Instrument("lab-ct-b", (2.5, 2.5, 2.5), 7000.0, 30000.0, "uint16", "ome-zarr",
+               ct=CTSettings(n_angles=180, photons=5000.0, beam_hardening=0.06, ring_strength=0.003, blur_pixels=0.9)),
+    Instrument("lab-ct-c", (6.0, 6.0, 6.0), 60.0, 30.0, "uint8", "slices",
+               ct=CTSettings(n_angles=120, photons=2000.0, beam_hardening=0.10, ring_strength=0.005, blur_pixels=0.5)),
+    Instrument("fib-sem", (0.02, 0.01, 0.01), 180.0, 8.0, "uint8", "tiff", fibsem=FIBSEMSettings()),
+)
 
-    mu = 0.15 + 0.85 * structure  # pores are not empty: air plus binder residue
-    img = gaussian_filter(mu, scanner.blur_voxels)
-    y, x = np.indices(structure.shape[1:], dtype=np.float32)
-    cy, cx = (structure.shape[1] - 1) / 2, (structure.shape[2] - 1) / 2
-    r = np.sqrt((y - cy) ** 2 + (x - cx) ** 2) / max(cy, cx)
-    cupping = 1.0 - 0.12 * (1 - r**2).clip(0, 1)  # beam hardening darkens the centre
-    rings = 0.02 * np.sin(r * 90.0) * (rng.random() + 0.5)
-    img = img * cupping[None] + rings[None]
-    img = img + scanner.noise * np.sqrt(np.clip(img, 1e-3, None)) * rng.standard_normal(img.shape)
-    raw = scanner.offset + scanner.gain * img
-    if scanner.dtype == "float32":
+
+def _instrument(name: str) -> Instrument:
+    for ins in INSTRUMENTS:
+        if ins.name == name:
+            return ins
+    raise ValueError(f"no instrument {name!r}; the demo has {[i.name for i in INSTRUMENTS]}")
+
+
+def _sample(ins: Instrument, shape: tuple[int, int, int], rng: np.random.Generator) -> np.ndarray:
+    """Ground-truth phases on the instrument's voxel grid (FIB-SEM: on the isotropic grid)."""
+    if ins.ct is not None:
+        radius = GRAIN_RADIUS_UM / ins.voxel_um[1]
+        phases = filter_microstructure(shape, rng, porosity=rng.uniform(0.25, 0.40), mean_radius=radius)
+        phases[:, ~core_mask(shape[1:], ins.ct.core_radius)] = 0  # air around the drilled core
+        return phases
+    assert ins.fibsem is not None
+    fine = (shape[0] * ins.fibsem.section_pixels, shape[1], shape[2])
+    return cathode_microstructure(fine, rng, active_fraction=rng.uniform(0.5, 0.6),
+                                  mean_radius=PARTICLE_RADIUS_UM / ins.voxel_um[1])
+
+
+def image(phases: np.ndarray, ins: Instrument, rng: np.random.Generator, threads: int = 2) -> np.ndarray:
+    """Image a phase volume with one instrument and return raw values in its type.
+
+    Parameters
+    ----------
+    phases : (Z, Y, X) uint8 ndarray
+        CT: on the voxel grid (square slices). FIB-SEM: on the isotropic grid.
+    ins : Instrument
+    rng : numpy.random.Generator
+    threads : int
+        CT slices reconstructed in parallel.
+    """
+    if ins.ct is not None:
+        signal = simulate_ct(phases, ins.ct, rng, threads=threads)
+    else:
+        assert ins.fibsem is not None
+        signal = simulate_fibsem(phases, ins.fibsem, rng)
+    raw = ins.offset + ins.gain * signal
+    if ins.dtype == "float32":
         return raw.astype(np.float32)
-    info = np.iinfo(scanner.dtype)
-    return np.clip(np.rint(raw), info.min, info.max).astype(scanner.dtype)
+    info = np.iinfo(ins.dtype)
+    return np.clip(np.rint(raw), info.min, info.max).astype(ins.dtype)
 
 
-def _write(volume: np.ndarray, scanner: Scanner, folder: Path, stem: str) -> Path:
-    if scanner.fmt == "tiff":
+def _write(volume: np.ndarray, ins: Instrument, folder: Path, stem: str) -> Path:
+    vz, vy, vx = ins.voxel_um
+    if ins.fmt == "tiff":
         import tifffile
 
         path = folder / f"{stem}.tif"
-        tifffile.imwrite(path, volume, imagej=True, resolution=(1 / scanner.voxel_um, 1 / scanner.voxel_um),
-                         metadata={"spacing": scanner.voxel_um, "unit": "um", "axes": "ZYX"})
-    elif scanner.fmt == "slices":
+        tifffile.imwrite(path, volume, imagej=True, resolution=(1 / vx, 1 / vy),
+                         metadata={"spacing": vz, "unit": "um", "axes": "ZYX"})
+    elif ins.fmt == "slices":
         from PIL import Image
 
         path = folder / stem
         path.mkdir(exist_ok=True)
         for i, sl in enumerate(volume):
             Image.fromarray(sl).save(path / f"{stem}_{i:04d}.png")
-    elif scanner.fmt == "mrc":
+    elif ins.fmt == "mrc":
         import mrcfile
 
         path = folder / f"{stem}.mrc"
         with mrcfile.new(path, overwrite=True) as m:
             m.set_data(volume)
-            m.voxel_size = scanner.voxel_um * 1e4  # Å
+            m.voxel_size = (vx * 1e4, vy * 1e4, vz * 1e4)  # Å, in MRC's (x, y, z) order
     else:
         import zarr
 
@@ -132,14 +157,25 @@ def _write(volume: np.ndarray, scanner: Scanner, folder: Path, stem: str) -> Pat
         root.create_array("0", data=volume, chunks=(16,) + volume.shape[1:])
         root.attrs["ome"] = {"version": "0.5", "multiscales": [{
             "axes": [{"name": a, "type": "space", "unit": "micrometer"} for a in "zyx"],
-            "datasets": [{"path": "0", "coordinateTransformations": [{"type": "scale", "scale": [scanner.voxel_um] * 3}]}],
+            "datasets": [{"path": "0", "coordinateTransformations": [{"type": "scale", "scale": [vz, vy, vx]}]}],
         }]}
     return path
 
 
-def write_archive(folder: str | os.PathLike[str], n_per_scanner: int = 2, shape: tuple[int, int, int] = (48, 160, 160),
-                  seed: int = 0) -> list[Path]:
-    """Write the lab's archive: ``n_per_scanner`` filters per scanner, plus a notes file.
+def write_archive(folder: str | os.PathLike[str], n_per_scanner: int = 2, shape: tuple[int, int, int] = (48, 128, 128),
+                  seed: int = 0, threads: int = 2) -> list[Path]:
+    """Write the facility's archive: ``n_per_scanner`` samples per instrument, plus a notes file.
+
+    Parameters
+    ----------
+    folder : path
+    n_per_scanner : int
+        Samples per instrument (filters for the CT scanners, cathode stacks for the FIB-SEM).
+    shape : (Z, Y, X)
+        Volume shape in voxels (square slices); FIB-SEM stacks have ``Z`` sections.
+    seed : int
+    threads : int
+        CT slices reconstructed in parallel.
 
     Returns
     -------
@@ -150,20 +186,38 @@ def write_archive(folder: str | os.PathLike[str], n_per_scanner: int = 2, shape:
     folder.mkdir(parents=True, exist_ok=True)
     rng = np.random.default_rng(seed)
     out = []
-    for sc in SCANNERS:
-        sub = folder / sc.name
+    for ins in INSTRUMENTS:
+        sub = folder / ins.name
         sub.mkdir(exist_ok=True)
+        stem = "filter" if ins.ct is not None else "cathode"
         for i in range(n_per_scanner):
-            structure = filter_microstructure(shape, rng, porosity=rng.uniform(0.25, 0.45))
-            out.append(_write(scan(structure, sc, rng), sc, sub, f"filter_{i:02d}"))
-    (folder / "NOTES.txt").write_text("Sintered filter batch 7, four scanners. Generated by warmstart demo.\n")
+            raw = image(_sample(ins, shape, rng), ins, rng, threads=threads)
+            out.append(_write(raw, ins, sub, f"{stem}_{i:02d}"))
+    (folder / "NOTES.txt").write_text(
+        "Shared facility archive: ceramics lab filter batch 7 (micro-CT, four instruments) and a battery\n"
+        "group's cathode (FIB-SEM). Generated by warmstart demo.\n")
     return out
 
 
 def write_labelled_set(folder: str | os.PathLike[str], n: int = 3, shape: tuple[int, int, int] = (24, 128, 128),
-                       scanner: str = "benchtop-a", seed: int = 1000) -> Path:
-    """Write labelled filter scans (not in the archive): ``images/`` and ``labels/`` as TIFF
-    stacks matched by name, labels 0 = pore, 1 = grain from the ground-truth microstructure.
+                       scanner: str = "lab-ct-a", seed: int = 1000, threads: int = 2) -> Path:
+    """Write labelled filter scans that are not in the archive.
+
+    ``images/`` and ``labels/`` hold TIFF stacks matched by name; labels are the ground-truth
+    phases, 0 = void (pores and air), 1 = alumina, 2 = zirconia inclusion.
+
+    Parameters
+    ----------
+    folder : path
+    n : int
+        Volumes.
+    shape : (Z, Y, X)
+        Square slices.
+    scanner : str
+        A CT instrument of :data:`INSTRUMENTS`.
+    seed : int
+        Differs from the archive's, so no labelled volume is in the corpus.
+    threads : int
 
     Returns
     -------
@@ -173,16 +227,16 @@ def write_labelled_set(folder: str | os.PathLike[str], n: int = 3, shape: tuple[
     import tifffile
 
     folder = Path(folder)
-    sc = next(s for s in SCANNERS if s.name == scanner)
+    ins = _instrument(scanner)
+    if ins.ct is None:
+        raise ValueError(f"labelled sets are filter scans; {scanner!r} is not a CT instrument")
     rng = np.random.default_rng(seed)
     for sub in ("images", "labels"):
         (folder / sub).mkdir(parents=True, exist_ok=True)
+    vz, vy, vx = ins.voxel_um
     for i in range(n):
-        structure = filter_microstructure(shape, rng, porosity=rng.uniform(0.25, 0.45))
-        img = scan(structure, sc, rng)
-        tifffile.imwrite(folder / "images" / f"labelled_{i:02d}.tif", img, imagej=True,
-                         resolution=(1 / sc.voxel_um, 1 / sc.voxel_um),
-                         metadata={"spacing": sc.voxel_um, "unit": "um", "axes": "ZYX"})
-        tifffile.imwrite(folder / "labels" / f"labelled_{i:02d}.tif", structure.astype(np.uint8), imagej=True,
-                         metadata={"axes": "ZYX"})
+        phases = _sample(ins, shape, rng)
+        tifffile.imwrite(folder / "images" / f"labelled_{i:02d}.tif", image(phases, ins, rng, threads=threads),
+                         imagej=True, resolution=(1 / vx, 1 / vy), metadata={"spacing": vz, "unit": "um", "axes": "ZYX"})
+        tifffile.imwrite(folder / "labels" / f"labelled_{i:02d}.tif", phases, imagej=True, metadata={"axes": "ZYX"})
     return folder
