@@ -27,7 +27,7 @@ def test_ci_runs_the_readme_test_command():
     ci = (ROOT / ".ci" / "run").read_text().splitlines()
     assert test_line in ci, "the README's test command and .ci/run have drifted apart"
     demo_line = next(line for line in LINES if line.endswith("warmstart demo"))
-    assert "pip install -e ." in demo_line
+    assert "pip install -e '.[demo]'" in demo_line
 
 
 def test_readme_warmstart_commands_run(tmp_path):
@@ -44,34 +44,76 @@ def test_readme_warmstart_commands_run(tmp_path):
         proc = subprocess.run([sys.executable, "-m", "warmstart", "-q", *args], cwd=tmp_path,
                               capture_output=True, text=True, timeout=300)
         assert proc.returncode == 0, (line, proc.stdout[-1500:], proc.stderr[-1500:])
-    assert json.loads((tmp_path / "merged.zarr" / "manifest.json").read_text())["counts"]["sources_ok"] == 4
+    assert json.loads((tmp_path / "merged.zarr" / "manifest.json").read_text())["counts"]["sources_ok"] == 5
     bench = json.loads((tmp_path / "bench" / "bench.json").read_text())
     assert len(bench["runs"]) == 2 * 2 * 2 and (tmp_path / "bench" / "bench.html").exists()
 
 
-def test_demo_quick_reuses_finished_stages(tmp_path):
-    from warmstart.demo.run import run_demo
+TINY_DEMO = ("corpus.sampling.patch_size=32", "corpus.sampling.stride=16", "corpus.workers=1",
+             "pretrain.max_steps=3", "pretrain.batch_size=16", "pretrain.checkpoint_every=1",
+             "bench.sizes=[1, 2]", "bench.seeds=2", "bench.epochs=1", "bench.steps_per_epoch=3",
+             "bench.frame_size=48", "bench.patch_size=32", "bench.val_slices=2", "bench.test_slices=3",
+             "bench.early_steps=2")
 
+
+def test_readme_cluster_template_lines_parse():
+    """The SLURM template cannot run here; its warmstart lines must at least be valid commands."""
+    from warmstart.cli import build_parser
+    from warmstart.recipe import load_recipe
+
+    blocks = re.findall(r"```text\n(.*?)```", README, flags=re.S)
+    lines = [line.split("srun ", 1)[-1] for b in blocks for line in b.splitlines()
+             if "warmstart " in line and not line.startswith("#")]
+    assert len(lines) >= 3
+    for line in lines:
+        args = build_parser().parse_args(shlex.split(line.replace("$SLURM_ARRAY_TASK_ID", "3"))[1:])
+        if getattr(args, "recipe", None):
+            load_recipe(args.recipe, args.overrides)
+
+
+def test_demo_runs_every_stage_and_reuses_them(tmp_path):
+    from warmstart.demo.run import DemoPlan, run_demo
+    from warmstart.export.file import read_manifest
+
+    plan = DemoPlan(1, (12, 64, 64), 2, (16, 64, 64), "demo-quick", TINY_DEMO)
     lines: list[str] = []
-    first = run_demo(tmp_path / "demo", quick=True, progress=False, echo=lines.append)
-    assert first["build"]["n_patches"] > 100 and first["build"]["exit_code"] == 0
+    first = run_demo(tmp_path / "demo", plan=plan, progress=False, echo=lines.append)
+    text = "\n".join(lines)
     assert all(r["status"] == "ok" for r in first["scan"]["sources"])
-    formats = {r["format"] for r in first["scan"]["sources"]}
-    assert formats == {"tiff", "slices", "mrc", "ome-zarr"}
-    dtypes = {r["dtype"] for r in first["scan"]["sources"]}
-    assert dtypes == {"uint8", "uint16", "float32"}
-    assert Path(first["report"]).exists()
-    again = run_demo(tmp_path / "demo", quick=True, progress=False, echo=lines.append)
-    assert again["build"].get("reused") and any("already" in line for line in lines)
+    assert {r["format"] for r in first["scan"]["sources"]} == {"tiff", "slices", "mrc", "ome-zarr"}
+    assert {r["dtype"] for r in first["scan"]["sources"]} == {"uint8", "uint16", "float32"}
+    assert first["build"]["n_patches"] > 50 and first["pretrain"]["steps"] == 3
+    # The exported file describes this corpus and run, and the card was written from it.
+    m = read_manifest(first["encoder"])
+    assert m["corpus"]["sources"] == 5 and m["training"]["steps"] == 3
+    assert "Intended use" in Path(first["card"]).read_text()
+    # Bench: random vs the new encoder, every run done, and the table and reports printed.
+    assert len(json.loads(Path(first["reports"]["bench_md"]).with_suffix(".json").read_text())["runs"]) == 2 * 2 * 2
+    assert "| random init (unet) |" in text and "final test Dice" in text and "early Dice vs random" in text
+    for path in first["reports"].values():
+        assert Path(path).exists() and path in text
+    # Nothing is redone on a rerun: the same files, the same summary.
+    before = {p: p.stat().st_mtime_ns for p in (tmp_path / "demo").rglob("*") if p.is_file() and "report" not in p.parts}
+    lines.clear()
+    again = run_demo(tmp_path / "demo", plan=plan, progress=False, echo=lines.append)
+    assert sum("already there" in line or "already built" in line or "already finished" in line
+               or "already exported" in line for line in lines) == 4  # archive, corpus, pretraining, export
+    assert any("(8 fine-tuning runs, 8 already done)" in line for line in lines)
+    assert again["bench"] == first["bench"] and again["stage_seconds"].keys() <= {"scan", "benchmark"}
+    changed = [p for p, t in before.items() if p.exists() and p.stat().st_mtime_ns != t and p.suffix != ".md"]
+    assert not [p for p in changed if "runs" in p.parts or p.suffix in (".safetensors", ".ckpt", ".zarr")]
 
 
 @pytest.mark.slow
-def test_demo_default_from_the_command_line(tmp_path):
-    proc = subprocess.run([sys.executable, "-m", "warmstart", "-q", "demo", "--out", str(tmp_path), "--json"],
+def test_demo_quick_from_the_command_line(tmp_path):
+    proc = subprocess.run([sys.executable, "-m", "warmstart", "-q", "demo", "--quick", "--out", str(tmp_path), "--json"],
                           capture_output=True, text=True, timeout=900)
     assert proc.returncode == 0, proc.stderr[-2000:]
     result = json.loads(proc.stdout)
-    assert result["build"]["n_patches"] > 500
+    assert result["build"]["n_patches"] > 300 and result["pretrain"]["steps"] == 200
+    sizes = {row["size"] for row in result["bench"]["rows"]} if "rows" in result["bench"] else None
+    assert Path(result["reports"]["bench_html"]).exists() and (sizes is None or sizes == {1, 4})
+    print(f"demo --quick: {result['seconds']} s, stages {result['stage_seconds']}")
 
 
 PYTHON_BLOCKS = re.findall(r"```python\n(.*?)```", README, flags=re.S)
