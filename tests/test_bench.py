@@ -154,7 +154,7 @@ def _helpful_encoder(labelled, tmp_path):
     manifest, _ = read_encoder_file(tmp_path / "quick.safetensors")
     pairs = load_pairs(labelled)
     torch.manual_seed(0)
-    net = UNet("unet", 2, **params)
+    net = UNet("unet", int(max(p.label.max() for p in pairs)) + 1, **params)
     opt = torch.optim.Adam(net.parameters(), 3e-3)
     st = manifest["standardization"]
     from warmstart.intensity import fit_intensity
@@ -219,12 +219,12 @@ def test_frozen_encoder_and_encoder_lr_factor_keep_the_encoder_weights(labelled,
     built = []
 
     def make():
-        built.append(UNet("unet", 2, base_width=4, depth=3))
+        built.append(UNet("unet", 3, base_width=4, depth=3))
         built.append({k: v.clone() for k, v in built[0].named_parameters()})
         return built[0]
 
     images = [fit_intensity(p.image).apply(p.image) for p in pairs]
-    fine_tune(make, images, [p.label for p in pairs], split, 1, 0, 2, s, torch.device("cpu"))
+    fine_tune(make, images, [p.label for p in pairs], split, 1, 0, 3, s, torch.device("cpu"))
     net, before = built
     after = dict(net.named_parameters())
     assert all(torch.equal(before[k], after[k]) for k in before if k.startswith("encoder."))
