@@ -26,7 +26,7 @@ from ..errors import PretrainError
 from ..encoders import build_encoder
 from .augment import apply_view, draw_params
 from .data import CorpusBatches
-from .methods import build_method
+from .methods import Views, build_method
 from .monitors import alignment, embedding_spread, knn_accuracy, load_probe, uniformity
 from .settings import PretrainSettings
 
@@ -64,10 +64,12 @@ class PretrainModule(pl.LightningModule):
         b, size = batch.shape[0], batch.shape[-1]  # (B, C, P, P)
         # Views in float32 whatever the training precision: cheap next to the model, and exact.
         with torch.autocast(device_type=batch.device.type, enabled=False):
-            x1 = apply_view(batch.float(), draw_params(b, size, self.view1, g, batch.device), g)
-            x2 = apply_view(batch.float(), draw_params(b, size, self.view2, g, batch.device), g)
+            p1 = draw_params(b, size, self.view1, g, batch.device)
+            x1 = apply_view(batch.float(), p1, g)
+            p2 = draw_params(b, size, self.view2, g, batch.device)
+            x2 = apply_view(batch.float(), p2, g)
             x1, x2 = self.standardized(x1), self.standardized(x2)
-        loss, out = self.method.loss(x1, x2)
+        loss, out = self.method.loss(x1, x2, Views(self.standardized(batch.float()), p1, p2, g))
         if not bool(torch.isfinite(loss)):
             raise PretrainError(
                 f"loss is {float(loss)} at step {step}: training stopped; the last good checkpoint is kept "

@@ -2,12 +2,15 @@
 from __future__ import annotations
 
 import inspect
+from dataclasses import dataclass
 from typing import Any, Callable
 
 import torch
 from torch import nn
 
-__all__ = ["Method", "METHODS", "register_method", "build_method", "pooled"]
+from ..augment import ViewParams
+
+__all__ = ["Method", "METHODS", "Views", "register_method", "build_method", "pooled"]
 
 METHODS: dict[str, Callable[..., "Method"]] = {}
 
@@ -39,6 +42,27 @@ def pooled(encoder: nn.Module, x: torch.Tensor) -> torch.Tensor:
     return encoder(x)[-1].mean(dim=(-2, -1))
 
 
+@dataclass
+class Views:
+    """What a training step knows about its two views, for methods that need more than the pixels.
+
+    Attributes
+    ----------
+    original : (B, C, P, P) tensor
+        The batch before augmentation (standardized like the views).
+    params1, params2 : ViewParams
+        Each view's parameters: dense methods map locations between views with
+        :mod:`warmstart.pretrain.geometry`.
+    generator : torch.Generator
+        The step's generator (seeded by seed, step and rank), for any further randomness.
+    """
+
+    original: torch.Tensor
+    params1: ViewParams
+    params2: ViewParams
+    generator: torch.Generator
+
+
 class Method(nn.Module):
     """A self-supervised objective on two views of a batch.
 
@@ -53,9 +77,11 @@ class Method(nn.Module):
         super().__init__()
         self.encoder = encoder
 
-    def loss(self, view1: torch.Tensor, view2: torch.Tensor) -> tuple[torch.Tensor, dict[str, torch.Tensor]]:
+    def loss(self, view1: torch.Tensor, view2: torch.Tensor,
+             views: Views | None = None) -> tuple[torch.Tensor, dict[str, torch.Tensor]]:
         """Return the loss and ``{"embedding": (B, D), "embedding2": (B, D)}``: the pooled
-        features of the two views (what the collapse and alignment monitors watch)."""
+        features of the two views (what the collapse and alignment monitors watch). ``views``
+        carries the un-augmented batch and the views' geometry (always given in training)."""
         raise NotImplementedError
 
     def after_step(self, step: int, total_steps: int) -> None:
@@ -70,6 +96,10 @@ class Method(nn.Module):
 
     def exported_encoder(self, momentum: bool = False) -> nn.Module:
         return self.encoder
+
+    def exported_decoder(self) -> nn.Module | None:
+        """The decoder the method trains (restoration), or None."""
+        return None
 
     @torch.no_grad()
     def embed(self, x: torch.Tensor) -> torch.Tensor:

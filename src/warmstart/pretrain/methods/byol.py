@@ -12,7 +12,7 @@ from lightly.loss import NegativeCosineSimilarity
 from lightly.models.modules.heads import BYOLPredictionHead, BYOLProjectionHead
 from torch import nn
 
-from .base import pooled, register_method
+from .base import Views, pooled, register_method
 from .momentum import MomentumMethod
 
 
@@ -29,7 +29,8 @@ class BYOL(MomentumMethod):
         self._make_momentum_copies(momentum)
         self.criterion = NegativeCosineSimilarity()
 
-    def loss(self, view1: torch.Tensor, view2: torch.Tensor) -> tuple[torch.Tensor, dict[str, torch.Tensor]]:
+    def loss(self, view1: torch.Tensor, view2: torch.Tensor,
+             views: Views | None = None) -> tuple[torch.Tensor, dict[str, torch.Tensor]]:
         f1, f2 = pooled(self.encoder, view1), pooled(self.encoder, view2)
         p1, p2 = self.predictor(self.head(f1)), self.predictor(self.head(f2))
         with torch.no_grad():

@@ -14,7 +14,7 @@ from lightly.loss import NTXentLoss
 from lightly.models.modules.heads import MoCoProjectionHead
 from torch import nn
 
-from .base import pooled, register_method
+from .base import Views, pooled, register_method
 from .momentum import MomentumMethod
 
 
@@ -31,7 +31,8 @@ class MoCoV2(MomentumMethod):
         self._make_momentum_copies(momentum)
         self.criterion = NTXentLoss(temperature=temperature, memory_bank_size=(queue_size, output_dim), gather_distributed=True)
 
-    def loss(self, view1: torch.Tensor, view2: torch.Tensor) -> tuple[torch.Tensor, dict[str, torch.Tensor]]:
+    def loss(self, view1: torch.Tensor, view2: torch.Tensor,
+             views: Views | None = None) -> tuple[torch.Tensor, dict[str, torch.Tensor]]:
         f1 = pooled(self.encoder, view1)
         q = self.head(f1)  # queries (B, D)
         with torch.no_grad():

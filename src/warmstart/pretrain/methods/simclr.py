@@ -12,7 +12,7 @@ from lightly.loss import NTXentLoss
 from lightly.models.modules.heads import SimCLRProjectionHead
 from torch import nn
 
-from .base import Method, pooled, register_method
+from .base import Method, Views, pooled, register_method
 
 
 @register_method("simclr")
@@ -25,7 +25,8 @@ class SimCLR(Method):
         self.head = SimCLRProjectionHead(input_dim=dim, hidden_dim=hidden_dim, output_dim=output_dim)
         self.criterion = NTXentLoss(temperature=temperature, gather_distributed=True)
 
-    def loss(self, view1: torch.Tensor, view2: torch.Tensor) -> tuple[torch.Tensor, dict[str, torch.Tensor]]:
+    def loss(self, view1: torch.Tensor, view2: torch.Tensor,
+             views: Views | None = None) -> tuple[torch.Tensor, dict[str, torch.Tensor]]:
         f1, f2 = pooled(self.encoder, view1), pooled(self.encoder, view2)  # (B, C)
         z1, z2 = self.head(f1), self.head(f2)  # (B, D)
         return self.criterion(z1, z2), {"embedding": f1.detach(), "embedding2": f2.detach()}
