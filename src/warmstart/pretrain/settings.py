@@ -91,7 +91,9 @@ class PretrainSettings:
     encoder_params : dict
         Constructor parameters; ``in_channels`` defaults to the corpus's channels.
     method : str
-        ``simclr``, ``moco_v2`` or ``byol``.
+        ``simclr``, ``moco_v2``, ``byol`` (global contrastive), ``dense`` (dense contrastive with
+        locations matched from the views' geometry), ``restore`` (restoration of corrupted
+        patches by a whole U-Net) or ``combined`` (a contrastive method plus restoration).
     method_params : dict
     view1, view2 : ViewSettings
         Augmentation pipelines of the two views (``[pretrain.view1]`` tables); ``view2`` defaults
