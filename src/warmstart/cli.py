@@ -91,7 +91,7 @@ def build_parser() -> argparse.ArgumentParser:
     pre.add_argument("-o", "--output", required=True, metavar="RUN", help="run folder")
     _add_recipe_options(pre, "smoke, cpu-lowres, gpu-resnet50-moco, ...", "pretrain.lr=3e-4", read_options=False)
     g = pre.add_argument_group("common settings (shortcuts for --set)")
-    g.add_argument("--method", choices=["simclr", "moco_v2", "byol"])
+    g.add_argument("--method", choices=["simclr", "moco_v2", "byol", "dense", "restore", "combined"])
     g.add_argument("--encoder", metavar="NAME", help="resnet_narrow, resnet18, resnet34, resnet50, unet")
     g.add_argument("--epochs", type=int)
     g.add_argument("--max-steps", type=int)
@@ -116,6 +116,8 @@ def build_parser() -> argparse.ArgumentParser:
     exp.add_argument("--weights", choices=["auto", "online", "momentum"], default="auto",
                      help="momentum (EMA) copy of MoCo / BYOL, or the online one; auto: momentum where there is one")
     exp.add_argument("--checkpoint", metavar="CKPT", help="a checkpoint other than checkpoints/last.ckpt")
+    exp.add_argument("--with-decoder", action="store_true",
+                     help="also write the U-Net decoder the method trained (methods restore and combined)")
     exp.add_argument("--json", action="store_true")
 
     ins = sub.add_parser("inspect", help="summarize an encoder file (and write its model card)",
@@ -331,7 +333,8 @@ def cmd_export(args: argparse.Namespace) -> int:
     except ImportError as err:
         print(f"warmstart: error: export needs torch ({err}); install it with: pip install 'warmstart[train]'", file=sys.stderr)
         return EXIT_ERROR
-    path, m = export_encoder(args.run, args.output, weights=args.weights, checkpoint=args.checkpoint)
+    path, m = export_encoder(args.run, args.output, weights=args.weights, checkpoint=args.checkpoint,
+                             with_decoder=args.with_decoder)
     if args.json:
         _print_json({"path": str(path), "manifest": m})
     else:

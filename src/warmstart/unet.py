@@ -4,8 +4,10 @@ The decoder walks the encoder's stages from the deepest up: bilinear upsampling 
 stage's size, concatenation with that stage's features (the skip connection), then a double 3x3
 convolution. Encoders whose shallowest stage is coarser than the input (the ResNets: stride 2)
 get one more upsampling and double convolution at full resolution. Keys are ``encoder.*``,
-``decoder.*`` and ``head.*``, so :func:`warmstart.warm_start` fills the encoder (layout
-``warmstart``).
+``decoder.*`` and ``head.*``, so :func:`warmstart.warm_start` fills the encoder and, from files
+exported ``--with-decoder``, the decoder (layout ``warmstart``). With a ResNet encoder the decoder
+is exactly segmentation_models_pytorch's ``Unet`` decoder built with ``decoder_channels`` equal to
+our widths and ``decoder_interpolation="bilinear"``.
 
 References
 ----------
@@ -40,6 +42,7 @@ class UNetDecoder(nn.Module):
 
     def __init__(self, stages: Sequence[Stage], norm: str = "batch") -> None:
         super().__init__()
+        self.norm = norm
         self.strides = [s.stride for s in stages]
         ch = [s.channels for s in stages]
         self.blocks = nn.ModuleList()
@@ -100,18 +103,23 @@ class UNet(nn.Module):
 
     @classmethod
     def from_file(cls, file: str | os.PathLike[str], classes: int = 2, in_channels: int | None = None,
-                  decoder_norm: str = "batch") -> "UNet":
+                  decoder_norm: str | None = None, decoder: bool | None = None) -> "UNet":
         """A reference U-Net built around an encoder file's encoder, warm-started from it.
 
-        ``in_channels`` other than the file's adapts the first convolution (see
-        :func:`warmstart.export.load.adapt_input_channels`). The report is ``net.warm_start_report``.
+        A file exported ``--with-decoder`` warm-starts the decoder too (then ``decoder_norm``
+        defaults to the file's; another norm leaves the decoder random, as ``decoder=False``
+        does). Only the head (``classes`` outputs) starts random. ``in_channels`` other than the
+        file's adapts the first convolution (see :func:`warmstart.export.load.adapt_input_channels`).
+        The report is ``net.warm_start_report``.
         """
         from .export.file import read_manifest
         from .export.load import warm_start
 
-        spec = dict(read_manifest(file)["encoder"]["spec"])
+        manifest = read_manifest(file)
+        spec = dict(manifest["encoder"]["spec"])
         if in_channels is not None:
             spec = {**spec, "params": {**spec["params"], "in_channels": int(in_channels)}}
-        net = cls(spec, classes, decoder_norm)
-        net.warm_start_report = warm_start(net, file, layout="warmstart")
+        file_norm = (manifest.get("decoder") or {}).get("norm")
+        net = cls(spec, classes, decoder_norm or file_norm or "batch")
+        net.warm_start_report = warm_start(net, file, layout="warmstart", decoder=decoder)
         return net

@@ -31,6 +31,7 @@ class Contender:
     file: str | None = None
     baseline: str | None = None  # the random contender it is paired with
     normalization: str = ""
+    parts: list[str] = field(default_factory=lambda: ["encoder"])  # what the file warm-starts
     leakage: list[str] = field(default_factory=list)
     mismatch: list[str] = field(default_factory=list)
 
@@ -75,10 +76,16 @@ def _contenders(encoders: Sequence[str | os.PathLike[str]], s: BenchSettings, pa
         seen.add(cid)
         st = m["standardization"]
         known = {p["sha256"] for p in m["corpus"]["provenance"]}
-        out.append(Contender(cid, f"warm start {Path(f).name}", m["encoder"]["spec"], f,
-                             randoms[_spec_key(m["encoder"]["spec"])],
+        parts = list(m.get("parts", ["encoder"]))
+        notes = []
+        if "decoder" in parts and (m.get("decoder") or {}).get("norm") != s.decoder_norm:
+            parts = ["encoder"]
+            notes.append(f"bench.decoder_norm {s.decoder_norm!r} is not the file's decoder norm "
+                         f"{m['decoder']['norm']!r}: its decoder is not used")
+        label = f"warm start {Path(f).name}" + (" (encoder + decoder)" if "decoder" in parts else "")
+        out.append(Contender(cid, label, m["encoder"]["spec"], f, randoms[_spec_key(m["encoder"]["spec"])],
                              f"{intensity_line(m)}, then (x - {st['mean']:.4g}) / {st['std']:.4g} (from the file)",
-                             leakage=[p.name for p in pairs if p.sha256 in known]))
+                             parts=parts, leakage=[p.name for p in pairs if p.sha256 in known], mismatch=notes))
     return out
 
 
@@ -103,7 +110,8 @@ def _model_factory(c: Contender, classes: int, s: BenchSettings) -> Callable[[],
     if c.file is None:
         spec = {**c.spec, "params": {**c.spec["params"], "in_channels": 1}}
         return lambda: UNet(spec, classes, s.decoder_norm)
-    return lambda: UNet.from_file(c.file, classes, in_channels=1, decoder_norm=s.decoder_norm)
+    return lambda: UNet.from_file(c.file, classes, in_channels=1, decoder_norm=s.decoder_norm,
+                                  decoder="decoder" in c.parts)
 
 
 def _device(s: BenchSettings) -> Any:

@@ -38,9 +38,14 @@ def summary_text(m: Mapping[str, Any]) -> str:
     params = ", ".join(f"{k}={val}" for k, val in e["spec"]["params"].items())
     stages = " ".join(f"{s['channels']}@{s['stride']}" for s in e["spec"]["stages"])
     rng = v.get("patch_range")
+    d = m.get("decoder")
+    n_enc = m["tensors"]["parameters"] - (d["parameters"] if d else 0)
     lines = [
-        f"encoder     {e['spec']['name']} ({params}); {m['tensors']['parameters']:,} parameters; {e['weights']} weights",
+        f"encoder     {e['spec']['name']} ({params}); {n_enc:,} parameters; {e['weights']} weights",
         f"stages      {stages}  (channels@stride)",
+        (f"decoder     U-Net decoder ({d['norm']} norm, {d['out_channels']} output channels), {d['parameters']:,} "
+         "parameters: loads into warmstart.UNet and smp.Unet with the same widths and bilinear upsampling"
+         if d else "decoder     none (encoder only)"),
         f"input       {m['input']['channels']} channel(s), patches of {m['input']['patch_size']} px, "
         f"voxel size {('%.4g-%.4g um' % tuple(rng)) if rng else 'unknown'}",
         f"intensity   {intensity_line(m)}",
@@ -70,6 +75,9 @@ def model_card(m: Mapping[str, Any], title: str = "Encoder") -> str:
     clinical = c.get("clinical") or any("CT" == mod or "MR" == mod for mod in c["modalities"])
     caution = f"\n\n**Caution.** {CLINICAL_CAUTION}" if clinical else \
         "\n\nResearch use. If you apply it to clinical data: " + CLINICAL_CAUTION
+    decoder_use = ("\n\nThe file holds the U-Net decoder too: `warmstart.UNet.from_file` and segmentation_models_pytorch's "
+                   "`Unet` with the same decoder widths and `decoder_interpolation='bilinear'` load both; other networks "
+                   "get the encoder alone (`warm_start`'s report says which)." if m.get("decoder") else "")
     return f"""# {title}: {e['spec']['name']} pretrained with {t['method']}
 
 A self-supervised image encoder trained by warmstart {m['warmstart_version']} on a facility's own
@@ -100,9 +108,9 @@ unlabeled images, meant as the warm start of a segmentation network (U-Net encod
 
 ## Intended use
 
-Initialization of the encoder of a segmentation network for images like the corpus's (same kind of
+Initialization of the encoder{' and decoder' if m.get('decoder') else ''} of a segmentation network for images like the corpus's (same kind of
 instrument, material and voxel size), fine-tuned on labelled data. Check the gain on your own
-labelled data (`warmstart bench`) before relying on it.
+labelled data (`warmstart bench`) before relying on it.{decoder_use}
 
 ## Limitations
 

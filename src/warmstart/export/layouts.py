@@ -18,6 +18,11 @@ layout                 target network                                  our encod
 ``encoder``            a bare warmstart encoder                        all
 =====================  ==============================================  ================
 
+Files exported ``--with-decoder`` also hold warmstart's U-Net decoder (``decoder.*``). It goes
+into ``warmstart.UNet`` (same encoder and decoder norm) and into segmentation_models_pytorch's
+``Unet`` built with the same decoder widths and bilinear upsampling (:data:`SMP_UNET_DECODER`);
+every other layout loads the encoder alone, and the report says so.
+
 MONAI's ResNet-18/34 backbones use a parameter-free shortcut ("type A": strided pooling and zero
 padding) where torchvision's ResNet has a strided 1x1 convolution, so our ResNet-18/34 weights
 have no faithful place there; ``warm_start`` reports the shortcut tensors it cannot place.
@@ -28,7 +33,7 @@ import re
 from dataclasses import dataclass
 from typing import Callable
 
-__all__ = ["Layout", "LAYOUTS", "family"]
+__all__ = ["Layout", "DecoderLayout", "LAYOUTS", "family"]
 
 
 @dataclass(frozen=True)
@@ -58,6 +63,27 @@ class Layout:
     families: tuple[str, ...]
     library: str
     hint: str = ""
+    decoder: "DecoderLayout | None" = None
+
+
+@dataclass(frozen=True)
+class DecoderLayout:
+    """Where a file's decoder tensors (``decoder.*``, warmstart's U-Net decoder) go in a network.
+
+    Attributes
+    ----------
+    map_keys : callable
+        All our decoder keys -> {our key: the target's key}.
+    in_decoder : callable
+        Whether a target key belongs to the network's decoder (all must be filled).
+    check : callable
+        ``check(model)`` -> a reason the decoder computes something else although the keys fit
+        (``None`` when it matches).
+    """
+
+    map_keys: Callable[[list[str]], dict[str, str]]
+    in_decoder: Callable[[str], bool]
+    check: Callable[[object], str | None] = lambda model: None
 
 
 def family(spec_name: str) -> str:
@@ -96,11 +122,42 @@ def _basicunet_part(k: str) -> bool:
     return k.startswith(("conv_0.", "down_1.", "down_2.", "down_3.", "down_4."))
 
 
+_OUR_DECODER_KEY = re.compile(r"^decoder\.(?:blocks\.(\d+)|final)\.(conv|norm)([12])\.(.+)$")
+
+
+def _smp_decoder_keys(ours: list[str]) -> dict[str, str]:
+    """Our ``decoder.blocks.i.conv{j}`` / ``norm{j}`` (and ``decoder.final``, the full-resolution
+    block) -> smp's ``decoder.blocks.i.conv{j}.0`` (convolution) / ``.1`` (batch norm)."""
+    blocks = {int(m.group(1)) for k in ours if (m := _OUR_DECODER_KEY.match(k)) and m.group(1) is not None}
+    final = max(blocks, default=-1) + 1
+    out = {}
+    for k in ours:
+        m = _OUR_DECODER_KEY.match(k)
+        if m:
+            i = int(m.group(1)) if m.group(1) is not None else final
+            out[k] = f"decoder.blocks.{i}.conv{m.group(3)}.{0 if m.group(2) == 'conv' else 1}.{m.group(4)}"
+    return out
+
+
+def _smp_decoder_check(model: object) -> str | None:
+    blocks = getattr(getattr(model, "decoder", None), "blocks", None)
+    modes = {getattr(b, "interpolation_mode", None) for b in blocks} if blocks is not None else set()
+    if modes != {"bilinear"}:
+        return (f"the network's decoder upsamples with {sorted(map(str, modes))}, the file's decoder was trained with "
+                "bilinear upsampling: build smp.Unet(..., decoder_interpolation='bilinear')")
+    return None
+
+
+SMP_UNET_DECODER = DecoderLayout(_smp_decoder_keys, _under("decoder."), _smp_decoder_check)
+"""smp ``Unet`` with ``decoder_channels`` equal to ours (ResNet-18/34: (256, 128, 64, 64, 32);
+ResNet-50: (1024, 512, 256, 64, 32)), batch norm, no attention and
+``decoder_interpolation="bilinear"`` computes exactly what warmstart's decoder computes."""
+
 LAYOUTS: dict[str, Layout] = {L.name: L for L in (
-    Layout("warmstart", "warmstart's reference U-Net (encoder.*)", _prefixed("encoder."), _under("encoder."),
-           ("resnet", "unet"), "warmstart"),
+    Layout("warmstart", "warmstart's reference U-Net (encoder.*, decoder.*)", _prefixed("encoder."), _under("encoder."),
+           ("resnet", "unet"), "warmstart", decoder=DecoderLayout(lambda ours: {k: k for k in ours}, _under("decoder."))),
     Layout("smp", "segmentation_models_pytorch network with a ResNet encoder (encoder.*)", _prefixed("encoder."),
-           _under("encoder."), ("resnet",), "segmentation_models_pytorch"),
+           _under("encoder."), ("resnet",), "segmentation_models_pytorch", decoder=SMP_UNET_DECODER),
     Layout("monai-flexibleunet", "MONAI FlexibleUNet with a ResNet backbone (encoder.*)", _prefixed("encoder."),
            _under("encoder."), ("resnet",), "monai",
            "MONAI's resnet18/34 backbones have parameter-free 'type A' shortcuts where ours has 1x1 convolutions: "

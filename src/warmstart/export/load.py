@@ -12,7 +12,16 @@ from ..errors import ExportError, WarmStartError
 from .file import read_encoder_file
 from .layouts import LAYOUTS, Layout, family
 
-__all__ = ["load_encoder", "warm_start", "WarmStartReport", "adapt_input_channels"]
+__all__ = ["load_encoder", "warm_start", "WarmStartReport", "adapt_input_channels", "split_parts"]
+
+DECODER_PREFIX = "decoder."
+
+
+def split_parts(arrays: dict[str, Any]) -> tuple[dict[str, Any], dict[str, Any]]:
+    """A file's tensors split into the encoder's and the decoder's (keys ``decoder.*``, kept whole)."""
+    enc = {k: v for k, v in arrays.items() if not k.startswith(DECODER_PREFIX)}
+    dec = {k: v for k, v in arrays.items() if k.startswith(DECODER_PREFIX)}
+    return enc, dec
 
 
 def load_encoder(file: str | os.PathLike[str], device: str = "cpu") -> Any:
@@ -42,6 +51,7 @@ def load_encoder(file: str | os.PathLike[str], device: str = "cpu") -> Any:
     from ..encoders import encoder_from_spec
 
     manifest, arrays = read_encoder_file(file)
+    arrays, _ = split_parts(arrays)  # a decoder the file may hold is for warm_start
     try:
         enc = encoder_from_spec(manifest["encoder"]["spec"])
     except ValueError as e:
@@ -103,9 +113,14 @@ class WarmStartReport:
         Target convolution biases set to zero because our convolution has none (exactly
         equivalent: the biases were absent in training).
     untouched : int
-        Target keys outside the encoder part (decoder, head), left as they were.
+        Target keys outside what was loaded (decoder, head), left as they were.
     applied : bool
         Whether anything was copied (not when ``strict`` refused).
+    decoder : list of str
+        Target keys filled from the file's decoder (empty when the file has none or it was not
+        loaded).
+    decoder_note : str
+        What happened to the file's decoder: loaded, not used and why, or "" (the file has none).
     """
 
     file: str
@@ -119,6 +134,8 @@ class WarmStartReport:
     untouched: int = 0
     applied: bool = False
     hint: str = ""
+    decoder: list[str] = field(default_factory=list)
+    decoder_note: str = ""
 
     @property
     def complete(self) -> bool:
@@ -141,7 +158,10 @@ class WarmStartReport:
             lines.append(f"  encoder keys of the network with nothing in the file: {few(self.missing)}")
         if self.unexpected:
             lines.append(f"  tensors of the file with no place in the network: {few(self.unexpected)}")
-        lines.append(f"  {self.untouched} keys outside the encoder left as they were")
+        if self.decoder_note:
+            lines.append(f"  decoder: {self.decoder_note}")
+        lines.append(f"  {self.untouched} keys outside {'encoder and decoder' if self.decoder else 'the encoder'} "
+                     "left as they were")
         if self.hint and not self.complete:
             lines.append(f"  hint: {self.hint}")
         return "\n".join(lines)
@@ -189,6 +209,29 @@ def _plan(layout: Layout, ours: dict[str, Any], theirs: dict[str, Any], first_co
     return rep, copy
 
 
+def _plan_decoder(layout: Layout, dec: dict[str, Any], theirs: dict[str, Any], model: Any) -> tuple[dict[str, Any], str]:
+    """(tensors to copy by target key, note): all or nothing, an exact match only."""
+    import torch
+
+    if layout.decoder is None:
+        return {}, f"not loaded: layout {layout.name!r} has no place for warmstart's U-Net decoder (the encoder alone was loaded)"
+    mapping = layout.decoder.map_keys(list(dec))
+    problems = [f"no place for {k}" for k in dec if k not in mapping]
+    problems += [f"the network has no {mapping[k]}" for k in dec if k in mapping and mapping[k] not in theirs]
+    problems += [f"{mapping[k]} ours {tuple(dec[k].shape)} theirs {tuple(theirs[mapping[k]].shape)}" for k in dec
+                 if k in mapping and mapping[k] in theirs and tuple(dec[k].shape) != tuple(theirs[mapping[k]].shape)]
+    filled = set(mapping.values())
+    problems += [f"the network's {k} has nothing in the file" for k in theirs if layout.decoder.in_decoder(k) and k not in filled]
+    reason = layout.decoder.check(model)
+    if reason:
+        problems.insert(0, reason)
+    if problems:
+        more = f" ... ({len(problems)} problems)" if len(problems) > 3 else ""
+        return {}, "not loaded, the network's decoder differs from the file's: " + "; ".join(problems[:3]) + more
+    copy = {mapping[k]: torch.as_tensor(v).to(theirs[mapping[k]].dtype) for k, v in dec.items()}
+    return copy, f"loaded ({len(copy)} tensors, layout {layout.name})"
+
+
 def _library(model: Any) -> str:
     return type(model).__module__.split(".")[0]
 
@@ -220,8 +263,9 @@ def _choose(model: Any, ours: dict[str, Any], theirs: dict[str, Any], fam: str, 
     return plans[best]
 
 
-def warm_start(model: Any, file: str | os.PathLike[str], layout: str = "auto", strict: bool = True) -> WarmStartReport:
-    """Copy an encoder file's weights into a network.
+def warm_start(model: Any, file: str | os.PathLike[str], layout: str = "auto", strict: bool = True,
+               decoder: bool | None = None) -> WarmStartReport:
+    """Copy an encoder file's weights (and its decoder, where the network's matches) into a network.
 
     Parameters
     ----------
@@ -235,6 +279,12 @@ def warm_start(model: Any, file: str | os.PathLike[str], layout: str = "auto", s
     strict : bool
         Refuse (and copy nothing) unless every tensor finds its place and every key of the
         network's encoder part is filled. With ``False``, copy what fits and report the rest.
+    decoder : bool, optional
+        For files exported ``--with-decoder``: ``None`` loads the decoder where the network's
+        decoder matches it exactly (warmstart's ``UNet``, smp ``Unet`` with the same widths and
+        bilinear upsampling) and otherwise loads the encoder alone; ``True`` refuses unless the
+        decoder is loaded too; ``False`` leaves the network's decoder as it is. The report's
+        ``decoder_note`` says which happened.
 
     Returns
     -------
@@ -249,10 +299,22 @@ def warm_start(model: Any, file: str | os.PathLike[str], layout: str = "auto", s
     """
     import torch
 
-    manifest, ours = read_encoder_file(file)
+    manifest, arrays = read_encoder_file(file)
+    ours, dec = split_parts(arrays)
     fam = family(manifest["encoder"]["spec"]["name"])
     theirs = model.state_dict()
     rep, copy = _choose(model, ours, theirs, fam, manifest["encoder"]["first_conv"], str(file), layout)
+    if dec and decoder is False:
+        rep.decoder_note = "not loaded (decoder=False)"
+    elif dec:
+        dcopy, rep.decoder_note = _plan_decoder(LAYOUTS[rep.layout], dec, theirs, model)
+        if decoder and not dcopy:
+            raise WarmStartError(f"{file}: decoder=True but the decoder was {rep.decoder_note}")
+        copy.update(dcopy)
+        rep.decoder = sorted(dcopy)
+        rep.untouched -= len(dcopy)
+    elif decoder:
+        raise WarmStartError(f"{file}: decoder=True but the file holds no decoder (export it with --with-decoder)")
     if strict and not rep.complete:
         raise WarmStartError(f"{rep}\n(strict: nothing was copied; pass strict=False to load what fits)")
     with torch.no_grad():

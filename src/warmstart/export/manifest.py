@@ -129,7 +129,8 @@ def timm_config(arch: str, channels: int, patch: int, mean: float, std: float, f
 
 
 def build_manifest(*, spec: Mapping[str, Any], first_conv: str, weights: str, corpus: Mapping[str, Any],
-                   corpus_path: str | None, standardization: tuple[float, float], training: Mapping[str, Any]) -> dict[str, Any]:
+                   corpus_path: str | None, standardization: tuple[float, float], training: Mapping[str, Any],
+                   decoder: Mapping[str, Any] | None = None) -> dict[str, Any]:
     """Assemble a manifest (without ``tensors``, which the writer adds).
 
     Parameters
@@ -146,6 +147,11 @@ def build_manifest(*, spec: Mapping[str, Any], first_conv: str, weights: str, co
         What the encoder's input was standardized with during training.
     training : dict
         Training summary.
+    decoder : dict, optional
+        The decoder section when the file holds the decoder too (``kind``, ``norm``,
+        ``out_channels``, ``tensors``, ``parameters``, ``key_prefix``). ``parts`` lists what the
+        file holds: ``["encoder"]`` or ``["encoder", "decoder"]`` (files without ``parts`` hold the
+        encoder only).
     """
     channels, patch = int(corpus["patches"]["shape"][0]), int(corpus["patches"]["shape"][-1])
     mean, std = (float(v) for v in standardization)
@@ -166,6 +172,8 @@ def build_manifest(*, spec: Mapping[str, Any], first_conv: str, weights: str, co
         "corpus": _corpus_section(corpus, corpus_path),
         "training": dict(training),
         "timm": timm_config(spec["name"], channels, patch, mean, std, first_conv),
+        "parts": ["encoder", "decoder"] if decoder else ["encoder"],
+        "decoder": dict(decoder) if decoder else None,
     }
 
 

@@ -71,9 +71,36 @@ def _training_section(run: Path, ckpt: dict[str, Any], hp: dict[str, Any]) -> di
     }
 
 
+_MOMENTUM_PREFIXES = ("method.encoder_momentum.", "method.contrastive.encoder_momentum.")
+
+
+def _decoder_arrays(state: dict[str, Any], hp: dict[str, Any], ckpt_path: Path) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
+    """The decoder the run's method trained (its ``exported_decoder``), as tensors ``decoder.*``,
+    and the manifest's decoder section."""
+    from ..encoders import build_encoder
+    from ..pretrain.methods import build_method
+
+    s = hp["settings"]
+    enc = build_encoder(s["encoder"], **{"in_channels": int(hp["in_channels"]), **s.get("encoder_params", {})})
+    method = build_method(s["method"], enc, **s.get("method_params", {}))
+    dec = method.exported_decoder()
+    if dec is None:
+        raise ExportError(f"{ckpt_path}: method {s['method']!r} trains no decoder; export without --with-decoder "
+                          "(restore and combined train one)")
+    try:
+        method.load_state_dict({k[len("method."):]: v for k, v in state.items() if k.startswith("method.")}, strict=True)
+    except RuntimeError as e:
+        raise ExportError(f"{ckpt_path}: the checkpoint does not fit method {s['method']!r}: {e}") from e
+    arrays = {f"decoder.{k}": v for k, v in encoder_arrays(dec).items()}
+    section = {"kind": "unet", "norm": dec.norm, "out_channels": int(dec.out_channels), "tensors": len(arrays),
+               "parameters": int(sum(p.numel() for p in dec.parameters())), "key_prefix": "decoder."}
+    return arrays, section
+
+
 def export_encoder(run: str | os.PathLike[str], out: str | os.PathLike[str], *, weights: str = "auto",
-                   checkpoint: str | os.PathLike[str] | None = None) -> tuple[Path, dict[str, Any]]:
-    """Write a run's encoder to one safetensors file with its manifest.
+                   checkpoint: str | os.PathLike[str] | None = None,
+                   with_decoder: bool = False) -> tuple[Path, dict[str, Any]]:
+    """Write a run's encoder (and, on request, its decoder) to one safetensors file with its manifest.
 
     Parameters
     ----------
@@ -87,6 +114,10 @@ def export_encoder(run: str | os.PathLike[str], out: str | os.PathLike[str], *, 
         momentum copy where the method has one.
     checkpoint : path, optional
         A checkpoint of the run other than ``checkpoints/last.ckpt``.
+    with_decoder : bool
+        Also write the U-Net decoder the method trained (``restore``, ``combined``), as tensors
+        ``decoder.*``; the manifest's ``parts`` and ``decoder`` say so. :func:`warmstart.warm_start`
+        loads it into networks whose decoder matches it exactly.
 
     Returns
     -------
@@ -96,8 +127,8 @@ def export_encoder(run: str | os.PathLike[str], out: str | os.PathLike[str], *, 
     Raises
     ------
     ExportError
-        Not a run folder, no checkpoint, no momentum copy when one is asked for, or a checkpoint
-        whose weights do not fit the encoder it records.
+        Not a run folder, no checkpoint, no momentum copy when one is asked for, no decoder when
+        one is asked for, or a checkpoint whose weights do not fit the encoder it records.
     """
     import torch
 
@@ -118,12 +149,12 @@ def export_encoder(run: str | os.PathLike[str], out: str | os.PathLike[str], *, 
     if "settings" not in hp or "in_channels" not in hp:
         raise ExportError(f"{ckpt_path}: not a warmstart pretraining checkpoint (no recorded settings)")
     state = ckpt["state_dict"]
-    has_momentum = any(k.startswith("method.encoder_momentum.") for k in state)
-    if weights == "momentum" and not has_momentum:
+    momentum_prefix = next((p for p in _MOMENTUM_PREFIXES if any(k.startswith(p) for k in state)), None)
+    if weights == "momentum" and momentum_prefix is None:
         raise ExportError(f"{ckpt_path}: method {hp['settings']['method']!r} keeps no momentum copy of the encoder; "
                           "export --weights online")
-    chosen = "momentum" if (weights == "momentum" or (weights == "auto" and has_momentum)) else "online"
-    prefix = "method.encoder_momentum." if chosen == "momentum" else "method.encoder."
+    chosen = "momentum" if (weights == "momentum" or (weights == "auto" and momentum_prefix)) else "online"
+    prefix = momentum_prefix if chosen == "momentum" else "method.encoder."
     s = hp["settings"]
     enc = build_encoder(s["encoder"], **{"in_channels": int(hp["in_channels"]), **s.get("encoder_params", {})})
     sub = {k[len(prefix):]: v for k, v in state.items() if k.startswith(prefix)}
@@ -132,13 +163,18 @@ def export_encoder(run: str | os.PathLike[str], out: str | os.PathLike[str], *, 
     except RuntimeError as e:
         raise ExportError(f"{ckpt_path}: the weights do not fit encoder {s['encoder']!r}: {e}") from e
     arrays = encoder_arrays(enc)
+    decoder = None
+    if with_decoder:
+        dec_arrays, decoder = _decoder_arrays(state, hp, ckpt_path)
+        arrays.update(dec_arrays)
     training = _training_section(run, ckpt, hp)
     if not training["finished"]:
         warnings.warn(f"{run}: the run stopped at step {training['steps']} of {training['planned_steps']}; "
                       "exporting that state (the manifest says so)", stacklevel=2)
     std = tuple(hp.get("standardization", (0.0, 1.0)))
     manifest = build_manifest(spec=enc.spec.to_dict(), first_conv=enc.first_conv, weights=chosen, corpus=corpus,
-                              corpus_path=corpus_path, standardization=std, training=training)  # type: ignore[arg-type]
+                              corpus_path=corpus_path, standardization=std, training=training,  # type: ignore[arg-type]
+                              decoder=decoder)
     path = write_encoder_file(out, arrays, manifest)
     from .file import read_manifest
 
