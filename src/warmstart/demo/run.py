@@ -150,7 +150,10 @@ def run_demo(out: str | os.PathLike[str] | None = None, *, quick: bool = False, 
     echo(f"      {build['n_patches']} patches of {recipe.corpus.sampling.patch_size} px")
 
     summary = _pretrain_stage(corpus, paths["run"], recipe.pretrain, progress, echo, timed)
-    manifest = _export_stage(paths["run"], paths["encoder"], paths["card"], echo)
+    from ..pretrain.methods import METHODS
+
+    manifest = _export_stage(paths["run"], paths["encoder"], paths["card"], METHODS[recipe.pretrain.method].trains_decoder,
+                             echo)
     bench = _bench_stage(paths["labelled"], paths["encoder"], paths["bench"], recipe.bench, progress, echo, timed)
 
     seconds = time.perf_counter() - t0
@@ -193,7 +196,7 @@ def _pretrain_stage(corpus: Path, run: Path, settings: Any, progress: bool, echo
     return s
 
 
-def _export_stage(run: Path, encoder: Path, card: Path, echo: Callable[[str], Any]) -> dict[str, Any]:
+def _export_stage(run: Path, encoder: Path, card: Path, with_decoder: bool, echo: Callable[[str], Any]) -> dict[str, Any]:
     from ..export.card import model_card, summary_text
     from ..export.file import read_manifest
     from ..export.pack import export_encoder
@@ -202,8 +205,9 @@ def _export_stage(run: Path, encoder: Path, card: Path, echo: Callable[[str], An
         echo(f"[5/7] encoder already exported: {encoder}")
         manifest = read_manifest(encoder)
     else:
-        echo(f"[5/7] exporting the encoder with its intensity rule and corpus statistics to {encoder}")
-        _, manifest = export_encoder(run, encoder)
+        what = "encoder and decoder" if with_decoder else "encoder"
+        echo(f"[5/7] exporting the {what} with the intensity rule and corpus statistics to {encoder}")
+        _, manifest = export_encoder(run, encoder, with_decoder=with_decoder)
     echo(f"[6/7] inspecting {encoder.name}")
     for line in summary_text(manifest).splitlines():
         echo(f"      {line}")

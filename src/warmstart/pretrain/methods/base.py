@@ -72,6 +72,7 @@ class Method(nn.Module):
     """
 
     method_name = "base"
+    trains_decoder = False  # True where exported_decoder() returns a trained U-Net decoder
 
     def __init__(self, encoder: nn.Module) -> None:
         super().__init__()

@@ -20,6 +20,8 @@ class Combined(Method):
     """Parameters: ``contrastive`` (a method name), ``contrastive_weight``, ``restore_weight``,
     and ``contrastive_params`` / ``restore_params`` tables for the two parts."""
 
+    trains_decoder = True
+
     def __init__(self, encoder: nn.Module, contrastive: str = "simclr", contrastive_weight: float = 1.0,
                  restore_weight: float = 1.0, contrastive_params: dict[str, Any] | None = None,
                  restore_params: dict[str, Any] | None = None) -> None:

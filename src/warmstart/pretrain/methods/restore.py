@@ -27,6 +27,8 @@ class Restore(Method):
     ``shuffle_block``, ``shuffle_fraction``, ``paint_prob``, ``outpaint_share``, ``boxes``,
     ``noise_sigma``)."""
 
+    trains_decoder = True
+
     def __init__(self, encoder: nn.Module, decoder_norm: str = "batch", nonlinear_prob: float = 0.9,
                  shuffle_prob: float = 0.5, shuffle_block: int = 4, shuffle_fraction: float = 0.3,
                  paint_prob: float = 0.9, outpaint_share: float = 0.8, boxes: int = 5, noise_sigma: float = 0.05) -> None:
