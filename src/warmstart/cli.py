@@ -418,7 +418,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     # tifffile logs its own complaint before raising; our error message already names the file.
     logging.getLogger("tifffile").setLevel(logging.CRITICAL)
     if args.quiet or args.command == "demo":  # Lightning's start-up chatter (accelerators found, tips)
-        for name in ("pytorch_lightning", "lightning_fabric", "lightning.pytorch"):
+        # The rank_zero loggers themselves: Lightning resets its package logger's level on import.
+        for name in ("pytorch_lightning.utilities.rank_zero", "lightning_fabric.utilities.rank_zero",
+                     "lightning.pytorch.utilities.rank_zero"):
             logging.getLogger(name).setLevel(logging.WARNING)
 
     handlers = {"scan": cmd_scan, "demo": cmd_demo, "pretrain": cmd_pretrain, "export": cmd_export, "bench": cmd_bench,

@@ -267,6 +267,7 @@ def pretrain(corpus: str | os.PathLike[str], out: str | os.PathLike[str], settin
         warnings.filterwarnings("ignore", message=".*Experiment logs directory.*")
         warnings.filterwarnings("ignore", message=".*Checkpoint directory .* exists and is not empty.*")
         warnings.filterwarnings("ignore", message=".*resuming from a checkpoint that ended before the epoch ended.*")
+        warnings.filterwarnings("ignore", message=".*isinstance\\(treespec, LeafSpec\\).*")  # Lightning vs new torch
         trainer.fit(module, loader, ckpt_path=str(last) if resume else None)
     seconds = time.perf_counter() - t0
     trainer.save_checkpoint(last)  # the end state, whatever the step count (all ranks call, rank 0 writes)
