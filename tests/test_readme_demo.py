@@ -132,9 +132,10 @@ def test_readme_python_snippets_run(tmp_path, monkeypatch):
 
     corpus = tiny_corpus(tmp_path, n=2, shape=(8, 64, 64), sampling=dict(patch_size=32, stride=16))
     quick = dict(batch_size=8, max_steps=1, num_workers=0, precision="32-true", accelerator="cpu")
-    for name, enc in (("encoder", "resnet18"), ("unet-encoder", "unet")):
-        pretrain(corpus, tmp_path / name, PretrainSettings(encoder=enc, **quick), progress=False)
-        ws.export_encoder(tmp_path / name, tmp_path / f"{name}.safetensors")
+    for name, enc, method in (("encoder", "resnet18", "simclr"), ("unet-encoder", "unet", "simclr"),
+                              ("whole-unet", "resnet18", "restore")):
+        pretrain(corpus, tmp_path / name, PretrainSettings(encoder=enc, method=method, **quick), progress=False)
+        ws.export_encoder(tmp_path / name, tmp_path / f"{name}.safetensors", with_decoder=method == "restore")
     tifffile.imwrite(tmp_path / "slice.tif", textured(shape=(1, 64, 64), seed=7)[0])
     monkeypatch.chdir(tmp_path)
     assert len(PYTHON_BLOCKS) >= 3
@@ -150,3 +151,7 @@ def test_readme_python_snippets_run(tmp_path, monkeypatch):
     exec(compile(first, "README.md", "exec"), scope)
     assert scope["net"].warm_start_report.complete and tuple(scope["logits"].shape) == (1, 3, 64, 64)
     assert len(scope["features"]) == 5
+    whole = next(b for b in PYTHON_BLOCKS if "whole-unet" in b)
+    scope = {}
+    exec(compile(whole, "README.md", "exec"), scope)
+    assert scope["report"].complete and scope["report"].decoder
