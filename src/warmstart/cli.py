@@ -146,7 +146,7 @@ def build_parser() -> argparse.ArgumentParser:
                                       "instruments, a battery group's FIB-SEM cathode stacks; mixed formats and bit "
                                       "depths) and a held-out labelled set, then scan, build a corpus, pretrain, "
                                       "export, inspect and benchmark random init against the new encoder on 2 CPU "
-                                      "cores (about 12 minutes; --quick under 4). Prints the comparison table and the "
+                                      "cores (about 11 minutes; --quick about 3). Prints the comparison table and the "
                                       "report paths. Rerunning with the same --out reuses finished stages.")
     demo.add_argument("--out", metavar="DIR", help="keep everything in DIR (default: a temporary folder)")
     demo.add_argument("--quick", action="store_true",
