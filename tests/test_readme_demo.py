@@ -102,6 +102,10 @@ def test_demo_runs_every_stage_and_reuses_them(tmp_path):
     assert again["bench"] == first["bench"] and again["stage_seconds"].keys() <= {"scan", "benchmark"}
     changed = [p for p, t in before.items() if p.exists() and p.stat().st_mtime_ns != t and p.suffix != ".md"]
     assert not [p for p in changed if "runs" in p.parts or p.suffix in (".safetensors", ".ckpt", ".zarr")]
+    from warmstart.errors import WarmstartError
+
+    with pytest.raises(WarmstartError, match="another variant"):  # finished stages of one plan never feed another
+        run_demo(tmp_path / "demo", quick=True, progress=False, echo=lines.append)
 
 
 @pytest.mark.slow

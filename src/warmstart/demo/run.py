@@ -58,6 +58,19 @@ def _stage(root: Path, name: str) -> Path:
     return root / f".{name}.done"
 
 
+def _check_plan(root: Path, plan: DemoPlan) -> None:
+    """Refuse to mix variants in one folder: finished stages of another plan would be reused."""
+    record = root / "demo-plan.json"
+    mine = json.loads(json.dumps(plan.__dict__))  # tuples as lists, as the file holds them
+    if record.exists():
+        theirs = json.loads(record.read_text())
+        if theirs != mine:
+            raise WarmstartError(f"{root} holds a demo of another variant (recipe {theirs.get('recipe')!r}); "
+                                 "choose another --out, or delete the folder to start afresh")
+    else:
+        record.write_text(json.dumps(mine, indent=1) + "\n")
+
+
 def run_demo(out: str | os.PathLike[str] | None = None, *, quick: bool = False, plan: DemoPlan | None = None,
              progress: bool = True, echo: Callable[[str], Any] = print) -> dict[str, Any]:
     """Run the whole pipeline on generated data; rerunning with the same ``out`` reuses finished stages.
@@ -102,6 +115,7 @@ def run_demo(out: str | os.PathLike[str] | None = None, *, quick: bool = False, 
     root = Path(out) if out is not None else Path(tempfile.mkdtemp(prefix="warmstart-demo-"))
     root.mkdir(parents=True, exist_ok=True)
     recipe = load_recipe(plan.recipe, plan.overrides)
+    _check_plan(root, plan)
     paths = {k: root / v for k, v in (("archive", "archive"), ("labelled", "labelled"), ("corpus", "corpus.zarr"),
                                       ("run", "run"), ("encoder", "encoder.safetensors"),
                                       ("card", "encoder-card.md"), ("bench", "bench"))}
