@@ -71,26 +71,24 @@ def _training_section(run: Path, ckpt: dict[str, Any], hp: dict[str, Any]) -> di
     }
 
 
-_MOMENTUM_PREFIXES = ("method.encoder_momentum.", "method.contrastive.encoder_momentum.")
-
-
-def _decoder_arrays(state: dict[str, Any], hp: dict[str, Any], ckpt_path: Path) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
-    """The decoder the run's method trained (its ``exported_decoder``), as tensors ``decoder.*``,
-    and the manifest's decoder section."""
+def _trained_method(state: dict[str, Any], hp: dict[str, Any], ckpt_path: Path) -> Any:
+    """The run's method rebuilt from its recorded settings, with the checkpoint's weights: it says
+    which encoder copy and which decoder it trained (``exported_encoder``, ``exported_decoder``)."""
     from ..encoders import build_encoder
     from ..pretrain.methods import build_method
 
     s = hp["settings"]
     enc = build_encoder(s["encoder"], **{"in_channels": int(hp["in_channels"]), **s.get("encoder_params", {})})
     method = build_method(s["method"], enc, **s.get("method_params", {}))
-    dec = method.exported_decoder()
-    if dec is None:
-        raise ExportError(f"{ckpt_path}: method {s['method']!r} trains no decoder; export without --with-decoder "
-                          "(restore and combined train one)")
     try:
         method.load_state_dict({k[len("method."):]: v for k, v in state.items() if k.startswith("method.")}, strict=True)
     except RuntimeError as e:
-        raise ExportError(f"{ckpt_path}: the checkpoint does not fit method {s['method']!r}: {e}") from e
+        raise ExportError(f"{ckpt_path}: the weights do not fit method {s['method']!r} with encoder {s['encoder']!r}: {e}") from e
+    return method
+
+
+def _decoder_section(dec: Any) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
+    """A decoder's tensors as ``decoder.*`` and the manifest's decoder section."""
     arrays = {f"decoder.{k}": v for k, v in encoder_arrays(dec).items()}
     section = {"kind": "unet", "norm": dec.norm, "out_channels": int(dec.out_channels), "tensors": len(arrays),
                "parameters": int(sum(p.numel() for p in dec.parameters())), "key_prefix": "decoder."}
@@ -128,11 +126,9 @@ def export_encoder(run: str | os.PathLike[str], out: str | os.PathLike[str], *, 
     ------
     ExportError
         Not a run folder, no checkpoint, no momentum copy when one is asked for, no decoder when
-        one is asked for, or a checkpoint whose weights do not fit the encoder it records.
+        one is asked for, or a checkpoint whose weights do not fit the method and encoder it records.
     """
     import torch
-
-    from ..encoders import build_encoder
 
     if weights not in WEIGHT_CHOICES:
         raise ExportError(f"weights must be one of {', '.join(WEIGHT_CHOICES)}, got {weights!r}")
@@ -148,24 +144,22 @@ def export_encoder(run: str | os.PathLike[str], out: str | os.PathLike[str], *, 
     hp = ckpt.get("hyper_parameters") or {}
     if "settings" not in hp or "in_channels" not in hp:
         raise ExportError(f"{ckpt_path}: not a warmstart pretraining checkpoint (no recorded settings)")
-    state = ckpt["state_dict"]
-    momentum_prefix = next((p for p in _MOMENTUM_PREFIXES if any(k.startswith(p) for k in state)), None)
-    if weights == "momentum" and momentum_prefix is None:
-        raise ExportError(f"{ckpt_path}: method {hp['settings']['method']!r} keeps no momentum copy of the encoder; "
-                          "export --weights online")
-    chosen = "momentum" if (weights == "momentum" or (weights == "auto" and momentum_prefix)) else "online"
-    prefix = momentum_prefix if chosen == "momentum" else "method.encoder."
     s = hp["settings"]
-    enc = build_encoder(s["encoder"], **{"in_channels": int(hp["in_channels"]), **s.get("encoder_params", {})})
-    sub = {k[len(prefix):]: v for k, v in state.items() if k.startswith(prefix)}
-    try:
-        enc.load_state_dict(sub, strict=True)
-    except RuntimeError as e:
-        raise ExportError(f"{ckpt_path}: the weights do not fit encoder {s['encoder']!r}: {e}") from e
+    method = _trained_method(ckpt["state_dict"], hp, ckpt_path)
+    online, momentum = method.exported_encoder(momentum=False), method.exported_encoder(momentum=True)
+    if weights == "momentum" and momentum is online:
+        raise ExportError(f"{ckpt_path}: method {s['method']!r} keeps no momentum copy of the encoder; "
+                          "export --weights online")
+    chosen = "momentum" if (weights == "momentum" or (weights == "auto" and momentum is not online)) else "online"
+    enc = momentum if chosen == "momentum" else online
     arrays = encoder_arrays(enc)
     decoder = None
     if with_decoder:
-        dec_arrays, decoder = _decoder_arrays(state, hp, ckpt_path)
+        dec = method.exported_decoder()
+        if dec is None:
+            raise ExportError(f"{ckpt_path}: method {s['method']!r} trains no decoder; export without --with-decoder "
+                              "(restore and combined train one)")
+        dec_arrays, decoder = _decoder_section(dec)
         arrays.update(dec_arrays)
     training = _training_section(run, ckpt, hp)
     if not training["finished"]:
