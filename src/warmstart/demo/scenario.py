@@ -127,14 +127,23 @@ def image(phases: np.ndarray, ins: Instrument, rng: np.random.Generator, threads
     return np.clip(np.rint(raw), info.min, info.max).astype(ins.dtype)
 
 
+def _write_tiff(path: Path, volume: np.ndarray, voxel_um: tuple[float, float, float] | None) -> Path:
+    """An ImageJ TIFF stack; with ``voxel_um`` (Z, Y, X) in µm as spacing and resolution."""
+    import tifffile
+
+    if voxel_um is None:
+        tifffile.imwrite(path, volume, imagej=True, metadata={"axes": "ZYX"})
+    else:
+        vz, vy, vx = voxel_um
+        tifffile.imwrite(path, volume, imagej=True, resolution=(1 / vx, 1 / vy),
+                         metadata={"spacing": vz, "unit": "um", "axes": "ZYX"})
+    return path
+
+
 def _write(volume: np.ndarray, ins: Instrument, folder: Path, stem: str) -> Path:
     vz, vy, vx = ins.voxel_um
     if ins.fmt == "tiff":
-        import tifffile
-
-        path = folder / f"{stem}.tif"
-        tifffile.imwrite(path, volume, imagej=True, resolution=(1 / vx, 1 / vy),
-                         metadata={"spacing": vz, "unit": "um", "axes": "ZYX"})
+        path = _write_tiff(folder / f"{stem}.tif", volume, ins.voxel_um)
     elif ins.fmt == "slices":
         from PIL import Image
 
@@ -224,8 +233,6 @@ def write_labelled_set(folder: str | os.PathLike[str], n: int = 3, shape: tuple[
     Path
         The folder (the LABELS argument of ``warmstart bench``).
     """
-    import tifffile
-
     folder = Path(folder)
     ins = _instrument(scanner)
     if ins.ct is None:
@@ -233,10 +240,8 @@ def write_labelled_set(folder: str | os.PathLike[str], n: int = 3, shape: tuple[
     rng = np.random.default_rng(seed)
     for sub in ("images", "labels"):
         (folder / sub).mkdir(parents=True, exist_ok=True)
-    vz, vy, vx = ins.voxel_um
     for i in range(n):
         phases = _sample(ins, shape, rng)
-        tifffile.imwrite(folder / "images" / f"labelled_{i:02d}.tif", image(phases, ins, rng, threads=threads),
-                         imagej=True, resolution=(1 / vx, 1 / vy), metadata={"spacing": vz, "unit": "um", "axes": "ZYX"})
-        tifffile.imwrite(folder / "labels" / f"labelled_{i:02d}.tif", phases, imagej=True, metadata={"axes": "ZYX"})
+        _write_tiff(folder / "images" / f"labelled_{i:02d}.tif", image(phases, ins, rng, threads=threads), ins.voxel_um)
+        _write_tiff(folder / "labels" / f"labelled_{i:02d}.tif", phases, None)
     return folder
