@@ -14,6 +14,9 @@ X. Wang, R. Zhang, C. Shen, T. Kong, L. Li, "Dense Contrastive Learning for Self
 Visual Pre-Training", CVPR 2021, arXiv:2011.09157 (the dense head and the global/dense mix).
 P. O. Pinheiro, A. Almahairi, R. Y. Benmalek, F. Golemo, A. Courville, "Unsupervised Learning of
 Dense Visual Representations", NeurIPS 2020, arXiv:2011.05499 (pairs from known geometry).
+A. Bardes, J. Ponce, Y. LeCun, "VICRegL: Self-Supervised Learning of Local Visual Features",
+NeurIPS 2022, arXiv:2210.01571 (local features matched by their positions in the two views;
+lightly's ``VICRegLLoss`` is the natural next method behind this interface).
 Heads and loss are lightly's (DenseCLProjectionHead, SimCLRProjectionHead, NTXentLoss).
 """
 from __future__ import annotations
