@@ -29,6 +29,7 @@ from typing import Any, Mapping
 
 import numpy as np
 
+from .base.settings import settings_from_dict
 from .errors import IntensityError
 
 __all__ = [
@@ -127,8 +128,6 @@ class IntensitySettings:
     @classmethod
     def from_dict(cls, d: Mapping[str, Any]) -> "IntensitySettings":
         """Build from a mapping, checking keys and types (the recipes' mechanism)."""
-        from .corpus.settings import settings_from_dict  # imported here: corpus.settings imports this module
-
         return settings_from_dict(cls, d, "intensity")
 
 

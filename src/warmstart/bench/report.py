@@ -10,7 +10,7 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from ..corpus.store import write_json
+from ..base.atomic import write_json
 
 __all__ = ["write_report", "markdown", "verdicts"]
 

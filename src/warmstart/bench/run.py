@@ -10,7 +10,7 @@ from typing import Any, Callable, Sequence
 
 import numpy as np
 
-from ..corpus.store import write_json
+from ..base.atomic import write_json
 from ..errors import WarmstartError
 from .data import load_pairs, make_split, n_classes
 from .settings import BenchSettings

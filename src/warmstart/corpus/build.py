@@ -28,7 +28,8 @@ from ..volumes import Candidate, describe_failure, discover, open_volume
 from .manifest import build_manifest
 from .sampling import PatchFilter, background_level, downscale_factors, extract_patches, plan_patches, source_seed
 from .settings import CorpusSettings
-from .store import INDEX_COLUMNS, CodeHistogram, StoreWriter, encode, write_json
+from ..base.atomic import write_json
+from .store import INDEX_COLUMNS, CodeHistogram, StoreWriter, encode
 
 __all__ = ["build_corpus", "BuildResult", "process_source", "source_parts", "merge_parts", "parse_shard", "EXIT_SKIPPED"]
 

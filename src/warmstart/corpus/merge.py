@@ -17,7 +17,8 @@ import numpy as np
 from ..errors import CorpusError
 from .manifest import build_manifest
 from .settings import CorpusSettings
-from .store import INDEX_COLUMNS, StoreWriter, open_corpus, write_json
+from ..base.atomic import write_json
+from .store import INDEX_COLUMNS, StoreWriter, open_corpus
 
 __all__ = ["merge_corpora"]
 

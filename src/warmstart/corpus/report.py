@@ -14,7 +14,8 @@ from typing import Any
 
 import numpy as np
 
-from .store import open_corpus, write_json
+from ..base.atomic import write_json
+from .store import open_corpus
 
 __all__ = ["write_report", "montage", "summary_rows"]
 

@@ -25,24 +25,14 @@ from typing import Any, Iterable, Mapping
 
 import numpy as np
 
+from ..base.atomic import write_json
 from ..errors import CorpusError
 from .settings import StoreSettings
 
-__all__ = ["CorpusStore", "StoreWriter", "CodeHistogram", "open_corpus", "encode", "decode", "quantization_note", "write_json", "INDEX_COLUMNS", "STORE_VERSION"]
+__all__ = ["CorpusStore", "StoreWriter", "CodeHistogram", "open_corpus", "encode", "decode", "quantization_note", "INDEX_COLUMNS", "STORE_VERSION"]
 
 STORE_VERSION = 1
 INDEX_COLUMNS = {"source": "int32", "axis": "int8", "z": "int32", "y": "int32", "x": "int32", "scale": "float32"}
-
-
-def write_json(path: str | os.PathLike[str], data: Any) -> None:
-    """Write JSON atomically (temporary file, fsync, rename): a reader never sees half a file."""
-    path = Path(path)
-    tmp = path.with_name(f".{path.name}.tmp")
-    with open(tmp, "w") as fh:
-        json.dump(data, fh, indent=1, sort_keys=False, allow_nan=False)
-        fh.flush()
-        os.fsync(fh.fileno())
-    os.replace(tmp, path)
 
 
 def encode(x: np.ndarray, encoding: Mapping[str, Any]) -> tuple[np.ndarray, dict[str, float]]:

@@ -8,7 +8,7 @@ import dataclasses
 from dataclasses import dataclass, field
 from typing import Any, Mapping
 
-from ..corpus.settings import require_positive, settings_from_dict
+from ..base.settings import require_positive, settings_from_dict
 from ..errors import RecipeError
 
 __all__ = ["PretrainSettings", "ViewSettings"]
