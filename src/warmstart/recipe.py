@@ -5,7 +5,8 @@ keys and wrong types are errors naming the key and the file. Any key can be over
 ``key=value`` strings (``corpus.sampling.patch_size=64``; the stage prefix may be left out), the
 value read as TOML (``64``, ``"ZYX"`` or ``ZYX``, ``[0.5, 99.5]``, ``true``).
 
-Named recipes (``smoke``, ``cpu-lowres``, ...) are the files shipped in ``warmstart/recipes``.
+Named recipes (``smoke``, ``cpu-lowres``, ...) are the TOML files in the repository's top-level
+``recipes/`` folder; an installed package carries the same files as ``warmstart/recipes``.
 """
 from __future__ import annotations
 
@@ -20,7 +21,20 @@ from .errors import RecipeError
 
 __all__ = ["Recipe", "load_recipe", "apply_overrides", "recipe_path", "RECIPE_DIR"]
 
-RECIPE_DIR = Path(__file__).parent / "recipes"
+
+def _shipped_recipe_dir() -> Path:
+    # An installed wheel holds the recipes inside the package (pyproject maps warmstart.recipes to
+    # the top-level recipes/ folder); a clone, or an editable install, has them at the top of the
+    # repository, two levels above this file (src/warmstart/recipe.py).
+    packaged = Path(__file__).parent / "recipes"
+    if packaged.is_dir():
+        return packaged
+    return Path(__file__).resolve().parents[2] / "recipes"
+
+
+RECIPE_DIR = _shipped_recipe_dir()
+
+
 def _pretrain_settings() -> type:
     # PretrainSettings lives in warmstart.pretrain, whose package imports torch when used; its
     # settings module itself does not, so recipes stay torch-free.
