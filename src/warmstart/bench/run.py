@@ -177,7 +177,7 @@ def run_bench(labels: str | os.PathLike[str], encoders: Sequence[str | os.PathLi
         What ``bench.json`` holds: settings, split, contenders, runs, summary and report paths.
     """
     import torch
-    from tqdm.auto import tqdm
+    from ..base.progress import progress_bar
 
     from .report import write_report
 
@@ -195,7 +195,7 @@ def run_bench(labels: str | os.PathLike[str], encoders: Sequence[str | os.PathLi
     planned = [(n, seed, c) for n in s.sizes for seed in range(s.seeds) for c in contenders]
     prepared: dict[str, list[np.ndarray]] = {}
     runs = []
-    bar = tqdm(planned, desc="bench runs", unit="run", disable=not progress)
+    bar = progress_bar(planned, desc="bench runs", unit="run", disable=not progress)
     for n, seed, c in bar:
         path = out / "runs" / f"{c.id}-n{n}-s{seed}.json"
         if path.exists():

@@ -259,7 +259,7 @@ def build_corpus(
     BuildResult
         ``exit_code`` is :data:`EXIT_SKIPPED` when some sources were skipped.
     """
-    from tqdm.auto import tqdm
+    from ..base.progress import progress_bar
 
     t0 = time.perf_counter()
     s = settings or CorpusSettings()
@@ -290,7 +290,7 @@ def build_corpus(
         n = source_parts(candidates[i], s.part_mb)
         jobs += [{"candidate": candidates[i], "position": i, "part": j, "n_parts": n, "settings": s.to_dict(),
                   "staging": str(staging)} for j in range(n)]
-    bar = tqdm(total=len(chosen), initial=len(done), desc="corpus: sources", unit="src", disable=not progress, leave=False)
+    bar = progress_bar(total=len(chosen), initial=len(done), desc="corpus: sources", unit="src", disable=not progress, leave=False)
     code_dtype = np.dtype(np.float16 if s.store.dtype == "float16" else np.uint16)
     assembler = _SourceAssembler(writer, code_dtype, (k, p, p), 8 * s.store.chunk_patches)
     n_patches = sum(r["stop"] - r["start"] for r in done)

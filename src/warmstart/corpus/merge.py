@@ -72,10 +72,10 @@ def merge_corpora(inputs: Sequence[str | os.PathLike[str]], out: str | os.PathLi
         for p in sorted(st.path.joinpath("journal").glob("[0-9]*.json")):
             rec = json.loads(p.read_text())
             records_by_pos[rec["position"]] = (i, rec)
-    from tqdm.auto import tqdm
+    from ..base.progress import progress_bar
 
     indexes = [st.index() for st in stores]
-    for pos in tqdm(positions, desc="corpus: merge", unit="src", disable=not progress, leave=False):
+    for pos in progress_bar(positions, desc="corpus: merge", unit="src", disable=not progress, leave=False):
         i, rec = records_by_pos[pos]
         st = stores[i]
         a, b = rec["start"], rec["stop"]

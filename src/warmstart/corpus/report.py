@@ -97,7 +97,7 @@ def write_report(corpus: str | os.PathLike[str], *, patches_per_source: int = 64
     Path
         The report folder.
     """
-    from tqdm.auto import tqdm
+    from ..base.progress import progress_bar
 
     store = open_corpus(corpus)
     m = store.manifest
@@ -108,7 +108,7 @@ def write_report(corpus: str | os.PathLike[str], *, patches_per_source: int = 64
                for p in sorted((store.path / "journal").glob("[0-9]*.json"))}
     files: dict[int, dict[str, str]] = {}
     ok = [e for e in m["sources"] if e["status"] == "ok"]
-    for e in tqdm(ok, desc="corpus: report", unit="src", disable=not progress, leave=False):
+    for e in progress_bar(ok, desc="corpus: report", unit="src", disable=not progress, leave=False):
         a, b = e["patch_range"]
         pos = e["position"]
         names = {}

@@ -53,13 +53,13 @@ def scan_archive(archive: str | os.PathLike[str], settings: CorpusSettings | Non
     sample_slices : int
         Slices read per source for the intensity summary.
     """
-    from tqdm.auto import tqdm
+    from ..base.progress import progress_bar
 
     s = settings or CorpusSettings()
     cands, ignored = discover(archive)
     result = ScanResult(ignored=[{"path": i.path, "reason": i.reason} for i in ignored])
     quick = IntensitySettings(percentiles=(0.5, 99.5), sample_slices=sample_slices, sample_voxels=200_000)
-    for c in tqdm(cands, desc="scan", unit="src", disable=not progress, leave=False):
+    for c in progress_bar(cands, desc="scan", unit="src", disable=not progress, leave=False):
         row: dict[str, Any] = {"name": c.name, "path": c.path, "format": c.format}
         try:
             with warnings.catch_warnings(record=True) as caught:
