@@ -132,6 +132,27 @@ def test_simclr_has_no_momentum_copy_and_a_non_run_is_refused(corpus, tmp_path, 
     assert not (tmp_path / "x.safetensors").exists()
 
 
+def test_a_run_made_before_networks_json_is_exported_by_the_cli(corpus, tmp_path):
+    # export/ reads which checkpoint entries are the encoder from the run folder; for a run that
+    # predates that record the command writes it first (from the checkpoint's own settings).
+    from warmstart.cli import main
+
+    run = tmp_path / "run"
+    pretrain(corpus, run, PretrainSettings(encoder="resnet_narrow", encoder_params={"base_width": 8}, method="byol",
+                                           **QUIET), progress=False)
+    expected = json.loads((run / "networks.json").read_text())
+    (run / "networks.json").unlink()
+    with pytest.raises(ExportError, match="networks.json: missing"):
+        ws.export_encoder(run, tmp_path / "lib.safetensors")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        assert main(["-q", "export", str(run), "-o", str(tmp_path / "cli.safetensors")]) == 0
+    assert json.loads((run / "networks.json").read_text()) == expected
+    ck = torch.load(run / "checkpoints" / "last.ckpt", weights_only=True)["state_dict"]
+    _, arrays = read_encoder_file(tmp_path / "cli.safetensors")
+    np.testing.assert_array_equal(arrays["conv1.weight"], ck["method.encoder_momentum.conv1.weight"].numpy())
+
+
 def test_an_unfinished_run_is_exported_with_a_warning(corpus, tmp_path, r18):
     run = tmp_path / "run"
     import shutil

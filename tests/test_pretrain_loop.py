@@ -74,6 +74,33 @@ def test_run_folder_history_and_safe_checkpoint(corpus, tmp_path):
         pretrain(corpus, run, PretrainSettings(max_steps=12, **FAST), progress=False)
 
 
+def test_run_folder_holds_only_the_documented_files(corpus, tmp_path):
+    # The layout documented in warmstart.run_folder (and the README): the training library's own
+    # files under lightning/, one history file, no metrics.csv beside it.
+    from warmstart import run_folder
+
+    run = pretrain(corpus, tmp_path / "run", PretrainSettings(max_steps=6, method="moco_v2", **FAST), progress=False).path
+    documented = {run_folder.RECIPE, run_folder.CORPUS_MANIFEST, run_folder.NETWORKS, run_folder.CHECKPOINTS,
+                  run_folder.HISTORY, run_folder.SUMMARY, run_folder.LIBRARY_LOGS}
+    top = {p.name for p in run.iterdir()}
+    assert top <= documented and documented - {run_folder.LIBRARY_LOGS} <= top
+    assert not list(run.rglob("metrics*.csv")) and not (run / "hparams.yaml").exists()
+    nets = run_folder.read_networks(run)
+    state = torch.load(run / "checkpoints" / "last.ckpt", weights_only=True)["state_dict"]
+    assert nets["encoder"] == {"online": "method.encoder.", "momentum": "method.encoder_momentum."}
+    assert nets["decoder"] is None and any(k.startswith(nets["encoder"]["momentum"]) for k in state)
+
+
+def test_progress_to_a_pipe_is_plain_lines(corpus, tmp_path):
+    # stderr is a pipe here: no carriage-return bar, a line per interval and one at the end.
+    code = ("import sys; from warmstart.pretrain.loop import pretrain; from warmstart.pretrain.settings import "
+            f"PretrainSettings; pretrain({str(corpus)!r}, {str(tmp_path / 'run')!r}, PretrainSettings(max_steps=4, "
+            f"**{FAST!r}), progress=True)")
+    err = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stderr
+    assert "\r" not in err
+    assert any(line.startswith("pretrain: 4/4 steps (100 %)") for line in err.splitlines()), err
+
+
 def test_deterministic_reruns_give_identical_losses(corpus, tmp_path):
     s = PretrainSettings(max_steps=10, method="byol", **FAST)
     a = pretrain(corpus, tmp_path / "a", s, progress=False)
@@ -204,3 +231,13 @@ def test_knn_accuracy_against_brute_force_and_in_a_run(corpus, tmp_path):
     assert len(res.summary["knn_per_epoch"]) == 2 and all(0 <= a <= 1 for a in res.summary["knn_per_epoch"])
     rows = list(csv.DictReader(open(res.path / "history.csv")))
     assert sum(1 for r in rows if r["knn"]) == 2 and all(r["loss"] for r in rows)
+
+
+def test_cli_pretrain_prints_no_library_advertisements(corpus, tmp_path):
+    # Lightning's start-up lines ("Tip: ...", "GPU available: ...") are silenced by default, not only under -q.
+    cmd = [sys.executable, "-m", "warmstart", "pretrain", str(corpus), "-o", str(tmp_path / "run"), "--max-steps", "2",
+           "--batch-size", "32", "--num-workers", "0", "--accelerator", "cpu", "--set", "encoder_params={base_width=8}"]
+    out = subprocess.run(cmd, capture_output=True, text=True)
+    assert out.returncode == 0, out.stderr
+    assert "Tip" not in out.stderr and "GPU available" not in out.stderr and "TPU available" not in out.stderr
+    assert "2 steps of simclr" in out.stdout

@@ -330,9 +330,11 @@ def cmd_pretrain(args: argparse.Namespace) -> int:
 def cmd_export(args: argparse.Namespace) -> int:
     try:
         from .export.pack import export_encoder  # imports torch to read the checkpoint
+        from .pretrain.networks import record_networks
     except ImportError as err:
         print(f"warmstart: error: export needs torch ({err}); install it with: pip install 'warmstart[train]'", file=sys.stderr)
         return EXIT_ERROR
+    record_networks(args.run, args.checkpoint)  # runs made before networks.json existed
     path, m = export_encoder(args.run, args.output, weights=args.weights, checkpoint=args.checkpoint,
                              with_decoder=args.with_decoder)
     if args.json:
@@ -417,11 +419,12 @@ def main(argv: Sequence[str] | None = None) -> int:
 
     # tifffile logs its own complaint before raising; our error message already names the file.
     logging.getLogger("tifffile").setLevel(logging.CRITICAL)
-    if args.quiet or args.command == "demo":  # Lightning's start-up chatter (accelerators found, tips)
-        # The rank_zero loggers themselves: Lightning resets its package logger's level on import.
-        for name in ("pytorch_lightning.utilities.rank_zero", "lightning_fabric.utilities.rank_zero",
-                     "lightning.pytorch.utilities.rank_zero"):
-            logging.getLogger(name).setLevel(logging.WARNING)
+    # Lightning's start-up chatter (accelerators found, advertisement tips) on every command: the
+    # rank_zero loggers themselves, as Lightning resets its package logger's level on import.
+    # Its warnings still show.
+    for name in ("pytorch_lightning.utilities.rank_zero", "lightning_fabric.utilities.rank_zero",
+                 "lightning.pytorch.utilities.rank_zero"):
+        logging.getLogger(name).setLevel(logging.WARNING)
 
     handlers = {"scan": cmd_scan, "demo": cmd_demo, "pretrain": cmd_pretrain, "export": cmd_export, "bench": cmd_bench,
                 "inspect": cmd_inspect, ("corpus", "build"): cmd_corpus_build, ("corpus", "show"): cmd_corpus_show,

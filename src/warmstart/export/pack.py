@@ -12,6 +12,7 @@ from typing import Any
 import numpy as np
 
 from ..errors import ExportError
+from ..run_folder import CHECKPOINTS, CORPUS_MANIFEST, HISTORY, RECIPE, SUMMARY, read_networks
 from .file import write_encoder_file
 from .manifest import build_manifest
 
@@ -31,8 +32,8 @@ def _read_json(path: Path, what: str) -> dict[str, Any]:
 
 def _corpus_manifest(run: Path) -> tuple[dict[str, Any], str | None]:
     """The corpus manifest the run saved, else the one at the corpus path it names."""
-    recipe = _read_json(run / "recipe.json", "the run's resolved recipe; is this a pretraining run folder?")
-    saved = run / "corpus-manifest.json"
+    recipe = _read_json(run / RECIPE, "the run's resolved recipe; is this a pretraining run folder?")
+    saved = run / CORPUS_MANIFEST
     if saved.exists():
         return _read_json(saved, "corpus manifest"), recipe.get("corpus")
     corpus = Path(recipe.get("corpus", ""))
@@ -42,9 +43,9 @@ def _corpus_manifest(run: Path) -> tuple[dict[str, Any], str | None]:
 def _training_section(run: Path, ckpt: dict[str, Any], hp: dict[str, Any]) -> dict[str, Any]:
     import torch
 
-    summary_path = run / "summary.json"
+    summary_path = run / SUMMARY
     summary = json.loads(summary_path.read_text()) if summary_path.exists() else {}
-    rows = list(csv.DictReader(open(run / "history.csv"))) if (run / "history.csv").exists() else []
+    rows = list(csv.DictReader(open(run / HISTORY))) if (run / HISTORY).exists() else []
     last = rows[-1] if rows else {}
     steps = int(ckpt.get("global_step", 0))
     total = int(hp.get("total_steps", steps))
@@ -71,20 +72,33 @@ def _training_section(run: Path, ckpt: dict[str, Any], hp: dict[str, Any]) -> di
     }
 
 
-def _trained_method(state: dict[str, Any], hp: dict[str, Any], ckpt_path: Path) -> Any:
-    """The run's method rebuilt from its recorded settings, with the checkpoint's weights: it says
-    which encoder copy and which decoder it trained (``exported_encoder``, ``exported_decoder``)."""
+def _trained_networks(run: Path, state: dict[str, Any], hp: dict[str, Any], ckpt_path: Path) -> tuple[Any, Any, Any]:
+    """The online encoder, the momentum encoder (or None) and the decoder (or None) of a run, built
+    from the encoder registry and filled from the checkpoint entries that the run's
+    ``networks.json`` names (the pretraining stage wrote it; nothing of the trainer is imported)."""
     from ..encoders import build_encoder
-    from ..pretrain.methods import build_method
+    from ..unet import UNetDecoder
 
     s = hp["settings"]
-    enc = build_encoder(s["encoder"], **{"in_channels": int(hp["in_channels"]), **s.get("encoder_params", {})})
-    method = build_method(s["method"], enc, **s.get("method_params", {}))
-    try:
-        method.load_state_dict({k[len("method."):]: v for k, v in state.items() if k.startswith("method.")}, strict=True)
-    except RuntimeError as e:
-        raise ExportError(f"{ckpt_path}: the weights do not fit method {s['method']!r} with encoder {s['encoder']!r}: {e}") from e
-    return method
+    nets = read_networks(run)
+
+    def filled(module: Any, prefix: str, what: str) -> Any:
+        part = {k[len(prefix):]: v for k, v in state.items() if k.startswith(prefix)}
+        try:
+            module.load_state_dict(part, strict=True)
+        except RuntimeError as e:
+            raise ExportError(f"{ckpt_path}: the {what} weights (entries {prefix}*) do not fit encoder "
+                              f"{s['encoder']!r} of method {s['method']!r}: {e}") from e
+        return module
+
+    def encoder() -> Any:
+        return build_encoder(s["encoder"], **{"in_channels": int(hp["in_channels"]), **s.get("encoder_params", {})})
+
+    online = filled(encoder(), nets["encoder"]["online"], "encoder")
+    momentum = filled(encoder(), nets["encoder"]["momentum"], "momentum encoder") if nets["encoder"]["momentum"] else None
+    dec = nets["decoder"]
+    decoder = filled(UNetDecoder(online.spec.stages, dec["norm"]), dec["key_prefix"], "decoder") if dec else None
+    return online, momentum, decoder
 
 
 def _decoder_section(dec: Any) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
@@ -133,7 +147,7 @@ def export_encoder(run: str | os.PathLike[str], out: str | os.PathLike[str], *, 
     if weights not in WEIGHT_CHOICES:
         raise ExportError(f"weights must be one of {', '.join(WEIGHT_CHOICES)}, got {weights!r}")
     run = Path(run)
-    ckpt_path = Path(checkpoint) if checkpoint else run / "checkpoints" / "last.ckpt"
+    ckpt_path = Path(checkpoint) if checkpoint else run / CHECKPOINTS / "last.ckpt"
     if not ckpt_path.is_file():
         raise ExportError(f"{ckpt_path}: no checkpoint to export (has the run in {run} started?)")
     corpus, corpus_path = _corpus_manifest(run)
@@ -145,17 +159,15 @@ def export_encoder(run: str | os.PathLike[str], out: str | os.PathLike[str], *, 
     if "settings" not in hp or "in_channels" not in hp:
         raise ExportError(f"{ckpt_path}: not a warmstart pretraining checkpoint (no recorded settings)")
     s = hp["settings"]
-    method = _trained_method(ckpt["state_dict"], hp, ckpt_path)
-    online, momentum = method.exported_encoder(momentum=False), method.exported_encoder(momentum=True)
-    if weights == "momentum" and momentum is online:
+    online, momentum, dec = _trained_networks(run, ckpt["state_dict"], hp, ckpt_path)
+    if weights == "momentum" and momentum is None:
         raise ExportError(f"{ckpt_path}: method {s['method']!r} keeps no momentum copy of the encoder; "
                           "export --weights online")
-    chosen = "momentum" if (weights == "momentum" or (weights == "auto" and momentum is not online)) else "online"
+    chosen = "momentum" if (weights == "momentum" or (weights == "auto" and momentum is not None)) else "online"
     enc = momentum if chosen == "momentum" else online
     arrays = encoder_arrays(enc)
     decoder = None
     if with_decoder:
-        dec = method.exported_decoder()
         if dec is None:
             raise ExportError(f"{ckpt_path}: method {s['method']!r} trains no decoder; export without --with-decoder "
                               "(restore and combined train one)")

@@ -1,14 +1,11 @@
 """The pretraining loop, on PyTorch Lightning: CPU, one GPU with mixed precision, or DDP.
 
-A run folder holds ``recipe.json`` (the resolved settings), ``checkpoints/`` (every
-``checkpoint_every`` steps and ``last.ckpt``), ``history.csv`` (loss, learning rate and monitors
-per step) and ``summary.json``. The two views of step ``s`` on rank ``r`` come from a generator
+The run folder is described in :mod:`warmstart.run_folder`. The two views of step ``s`` on rank ``r`` come from a generator
 seeded with (seed, s, r) and the data position is part of the step count, so a resumed run sees
 exactly the batches and views the uninterrupted run would have seen.
 """
 from __future__ import annotations
 
-import json
 import math
 import os
 import time
@@ -22,12 +19,16 @@ import pytorch_lightning as pl
 import torch
 
 from .. import __version__
+from ..base.atomic import write_json
 from ..errors import PretrainError
 from ..encoders import build_encoder
+from ..run_folder import CHECKPOINTS, CORPUS_MANIFEST, HISTORY, LIBRARY_LOGS, RECIPE, SUMMARY, write_networks
 from .augment import apply_view, draw_params
 from .data import CorpusBatches
+from .history import HistoryLogger, read_history
 from .methods import Views, build_method
 from .monitors import alignment, embedding_spread, knn_accuracy, load_probe, uniformity
+from .progress import training_progress
 from .settings import PretrainSettings
 
 __all__ = ["pretrain", "PretrainResult", "PretrainModule"]
@@ -200,7 +201,7 @@ def pretrain(corpus: str | os.PathLike[str], out: str | os.PathLike[str], settin
 
     s = settings or PretrainSettings()
     out = Path(out)
-    ckpt_dir = out / "checkpoints"
+    ckpt_dir = out / CHECKPOINTS
     last = ckpt_dir / "last.ckpt"
     if resume and not last.exists():
         raise PretrainError(f"{out}: nothing to resume (no checkpoints/last.ckpt)")
@@ -208,10 +209,6 @@ def pretrain(corpus: str | os.PathLike[str], out: str | os.PathLike[str], settin
         raise PretrainError(f"{out}: holds a run already; pass --resume to continue it or choose a new folder")
     out.mkdir(parents=True, exist_ok=True)
     first_process = os.environ.get("LOCAL_RANK", "0") == "0" and os.environ.get("NODE_RANK", "0") == "0"
-    if resume and first_process and (out / "metrics.csv").exists():
-        # Lightning's CSV logger starts metrics.csv afresh; keep the interrupted part's rows.
-        n = len(list(out.glob("metrics-part*.csv")))
-        (out / "metrics.csv").rename(out / f"metrics-part{n:03d}.csv")
     store = open_corpus(corpus)
     names = {e["name"]: e["position"] for e in store.manifest["sources"]}
     unknown = sorted(set(s.source_weights) - set(names))
@@ -230,9 +227,9 @@ def pretrain(corpus: str | os.PathLike[str], out: str | os.PathLike[str], settin
     trainer = pl.Trainer(
         max_steps=-1, accelerator=s.accelerator, devices=s.devices, strategy=s.strategy,
         num_nodes=s.num_nodes, precision=_precision(s), gradient_clip_val=s.grad_clip or None,
-        deterministic=s.deterministic, logger=_loggers(out),
-        callbacks=[ckpt, position], enable_progress_bar=progress,
-        enable_model_summary=False, log_every_n_steps=1, default_root_dir=out,
+        deterministic=s.deterministic, logger=_loggers(out, resume),
+        callbacks=[ckpt, position, *training_progress(progress)], enable_progress_bar=progress,
+        enable_model_summary=False, log_every_n_steps=1, default_root_dir=out / LIBRARY_LOGS,
         use_distributed_sampler=False,
     )
     # The epoch length depends on the number of ranks, which the trainer knows before any
@@ -247,11 +244,14 @@ def pretrain(corpus: str | os.PathLike[str], out: str | os.PathLike[str], settin
     trainer.fit_loop.max_epochs = math.ceil(total / steps_per_epoch)
     position.steps_per_epoch = steps_per_epoch
     channels = int(store.patches.shape[1])
-    if first_process:  # one writer under DDP
-        (out / "recipe.json").write_text(json.dumps({"pretrain": s.to_dict(), "corpus": str(store.path)}, indent=1))
-        # The corpus manifest travels with the run, so an export works after the corpus has moved.
-        (out / "corpus-manifest.json").write_text(json.dumps(store.manifest, indent=1))
     module = PretrainModule(s.to_dict(), channels, total, _standardization(store.manifest, s))
+    if first_process:  # one writer under DDP
+        write_json(out / RECIPE, {"pretrain": s.to_dict(), "corpus": str(store.path)})
+        # The corpus manifest travels with the run, so an export works after the corpus has moved.
+        write_json(out / CORPUS_MANIFEST, store.manifest)
+        # Which checkpoint entries are the encoder copies and the decoder: the export reads this
+        # instead of rebuilding the method.
+        write_networks(out, module.method.trained_networks("method."))
     if resume:
         # Lightning makes the data iterator of the resumed epoch before any epoch hook runs, so
         # the dataset learns its position from the checkpoint here.
@@ -271,7 +271,7 @@ def pretrain(corpus: str | os.PathLike[str], out: str | os.PathLike[str], settin
         trainer.fit(module, loader, ckpt_path=str(last) if resume else None)
     seconds = time.perf_counter() - t0
     trainer.save_checkpoint(last)  # the end state, whatever the step count (all ranks call, rank 0 writes)
-    history = _write_history(out)
+    history = read_history(out / HISTORY)
     summary = {
         "warmstart_version": __version__, "torch_version": torch.__version__, "lightning_version": pl.__version__,
         "method": s.method, "encoder": module.method.encoder.spec.to_dict(), "steps": int(trainer.global_step),
@@ -282,7 +282,7 @@ def pretrain(corpus: str | os.PathLike[str], out: str | os.PathLike[str], settin
         "knn_per_epoch": module.knn_history or None,
     }
     if trainer.is_global_zero:
-        (out / "summary.json").write_text(json.dumps(summary, indent=1))
+        write_json(out / SUMMARY, summary)
     return PretrainResult(out, int(trainer.global_step), summary["final_loss"], summary)
 
 
@@ -294,42 +294,14 @@ def _standardization(manifest: dict[str, Any], s: PretrainSettings) -> tuple[flo
     return (float(stats["mean"]), float(stats["std"]))
 
 
-def _loggers(out: Path) -> list[Any]:
-    """CSV always; TensorBoard too when it is installed."""
-    from pytorch_lightning.loggers import CSVLogger
-
-    loggers: list[Any] = [CSVLogger(out, name="", version="", flush_logs_every_n_steps=10)]
+def _loggers(out: Path, resume: bool) -> list[Any]:
+    """history.csv always; TensorBoard's files under lightning/tensorboard when it is installed."""
+    loggers: list[Any] = [HistoryLogger(out / HISTORY, resume=resume)]
     try:
         import tensorboard  # noqa: F401
     except ImportError:
         return loggers
     from pytorch_lightning.loggers import TensorBoardLogger
 
-    loggers.append(TensorBoardLogger(out, name="tensorboard", version=""))
+    loggers.append(TensorBoardLogger(out / LIBRARY_LOGS, name="tensorboard", version=""))
     return loggers
-
-
-def _write_history(out: Path) -> list[dict[str, float]]:
-    """Lightning's metrics.csv (and those of interrupted parts) -> history.csv, one row per step."""
-    import csv
-
-    sources = sorted(out.glob("metrics-part*.csv")) + ([out / "metrics.csv"] if (out / "metrics.csv").exists() else [])
-    rows: dict[int, dict[str, float]] = {}
-    for src in sources:  # parts of interrupted runs first; later parts win for steps run twice
-        with open(src) as fh:
-            for r in csv.DictReader(fh):
-                step = int(float(r["step"]))
-                rows.setdefault(step, {}).update({k: float(v) for k, v in r.items() if v not in ("", None) and k != "step"})
-    # Epoch-end figures (knn) join the row of the latest step with a loss at or before them.
-    hist: list[dict[str, float]] = []
-    for k, v in sorted(rows.items()):
-        if "loss" in v:
-            hist.append({"step": k, **v})
-        elif hist:
-            hist[-1].update({m: x for m, x in v.items() if m != "epoch"})
-    keys = ["step", "loss", "lr", "spread", "alignment", "uniformity", "knn"]
-    with open(out / "history.csv", "w", newline="") as fh:
-        w = csv.DictWriter(fh, fieldnames=keys, extrasaction="ignore")
-        w.writeheader()
-        w.writerows(hist)
-    return hist

@@ -102,6 +102,27 @@ class Method(nn.Module):
         """The decoder the method trains (restoration), or None."""
         return None
 
+    def trained_networks(self, prefix: str = "") -> dict[str, Any]:
+        """Where the exportable networks sit in this method's state dict: the run folder's
+        ``networks.json``, from which the export stage takes them without rebuilding the method.
+
+        Returns
+        -------
+        dict
+            ``{"encoder": {"online": KEY_PREFIX, "momentum": KEY_PREFIX or None},
+            "decoder": None or {"kind": "unet", "norm": str, "key_prefix": KEY_PREFIX}}``; every key
+            prefix ends with a dot and starts with ``prefix`` (``"method."`` in a checkpoint).
+        """
+        names = {id(m): name for name, m in self.named_modules()}
+        online, momentum = self.exported_encoder(momentum=False), self.exported_encoder(momentum=True)
+        decoder = self.exported_decoder()
+        return {
+            "encoder": {"online": f"{prefix}{names[id(online)]}.",
+                        "momentum": None if momentum is online else f"{prefix}{names[id(momentum)]}."},
+            "decoder": None if decoder is None else {"kind": "unet", "norm": decoder.norm,
+                                                     "key_prefix": f"{prefix}{names[id(decoder)]}."},
+        }
+
     @torch.no_grad()
     def embed(self, x: torch.Tensor) -> torch.Tensor:
         return pooled(self.encoder, x)
