@@ -83,22 +83,22 @@ def labelled(tmp_path_factory):
 
 def test_split_is_deterministic_nested_and_keeps_away_from_test_slices(labelled):
     pairs = load_pairs(labelled)
-    s = BenchSettings(sizes=[1, 4, 16], frame_size=48, patch_size=32, val_slices=3, test_slices=5, gap_slices=2)
+    s = BenchSettings(sizes=[1, 4, 16], tile_size=48, patch_size=32, val_slices=3, test_slices=5, gap_slices=2)
     a, b = make_split(pairs, s), make_split(pairs, s)
-    assert a.to_dict() == b.to_dict() and len(a.frames) == 16
+    assert a.to_dict() == b.to_dict() and len(a.tiles) == 16
     assert make_split(pairs, BenchSettings(**{**s.to_dict(), "split_seed": 1})).to_dict() != a.to_dict()
     held = set(a.test) | set(a.val)
     assert not set(a.test) & set(a.val) and len(held) == 8
-    for i, z, y, x, h, w in a.frames:
+    for i, z, y, x, h, w in a.tiles:
         assert all(not (j == i and abs(z - zz) <= 2) for j, zz in held)
         assert (h, w) == (48, 48) and 0 <= y <= 64 - 48 and 0 <= x <= 64 - 48
-    assert make_split(pairs, BenchSettings(**{**s.to_dict(), "sizes": [4]})).frames[:4] == a.frames[:4]  # nested
+    assert make_split(pairs, BenchSettings(**{**s.to_dict(), "sizes": [4]})).tiles[:4] == a.tiles[:4]  # nested
 
 
 def test_same_seed_same_patches_for_every_contender(labelled):
     from warmstart.bench.train import patch_plan
 
-    s = BenchSettings(sizes=[1, 4], frame_size=48, patch_size=32, epochs=2, steps_per_epoch=3, val_slices=2, test_slices=2)
+    s = BenchSettings(sizes=[1, 4], tile_size=48, patch_size=32, epochs=2, steps_per_epoch=3, val_slices=2, test_slices=2)
     split = make_split(load_pairs(labelled), s)
     p = patch_plan(split, 4, s, seed=3)
     assert np.array_equal(p, patch_plan(split, 4, s, seed=3)) and p.shape == (6, 8, 6)
@@ -176,7 +176,7 @@ def test_bench_end_to_end_report_agrees_with_runs_and_resumes(labelled, tmp_path
     from warmstart.bench.run import run_bench
 
     enc = _helpful_encoder(labelled, tmp_path)
-    s = BenchSettings(sizes=[1, 4], seeds=3, frame_size=48, patch_size=32, epochs=3, steps_per_epoch=4, batch_size=4,
+    s = BenchSettings(sizes=[1, 4], replicates=3, tile_size=48, patch_size=32, epochs=3, steps_per_epoch=4, batch_size=4,
                       val_slices=3, test_slices=4, early_steps=2, lr=2e-3, threads=2)
     res = run_bench(labelled, [enc], tmp_path / "out", s, progress=False)
     runs = res["runs"]
@@ -192,7 +192,7 @@ def test_bench_end_to_end_report_agrees_with_runs_and_resumes(labelled, tmp_path
         diff = saved["summary"][n]["helpful"]["vs_random"]["early_dice"]
         by = {(r["contender"], r["seed"]): r["early_dice"] for r in saved["runs"] if str(r["size"]) == n}
         assert diff["mean"] == pytest.approx(np.mean([by["helpful", k] - by["random", k] for k in range(3)]))
-    # A supervised encoder of the same task converges faster: early Dice higher on every seed at 1 frame.
+    # A supervised encoder of the same task converges faster: early Dice higher on every seed at 1 tile.
     assert saved["summary"]["1"]["helpful"]["vs_random"]["early_dice"]["wins"] == 3
     helpful = next(c for c in saved["contenders"] if c["id"] == "helpful")
     assert helpful["leakage"] == ["labelled_01"] and "tested on data seen in pretraining" in md
@@ -204,6 +204,13 @@ def test_bench_end_to_end_report_agrees_with_runs_and_resumes(labelled, tmp_path
     again = run_bench(labelled, [enc], tmp_path / "out", s, progress=False)
     assert {p.name: p.stat().st_mtime_ns for p in (tmp_path / "out" / "runs").glob("*.json")} == stamp
     assert again["summary"] == res["summary"]
+    # A run record written before the figure was renamed (auc -> curve_area) is read with the new name.
+    one = next((tmp_path / "out" / "runs").glob("random-n1-s0.json"))
+    rec = json.loads(one.read_text())
+    rec["auc"] = rec.pop("curve_area")
+    one.write_text(json.dumps(rec))
+    assert run_bench(labelled, [enc], tmp_path / "out", s, progress=False)["summary"] == res["summary"]
+    assert "Curve area: the mean validation Dice over the epochs" in md and "(reached) counts those replicates" in md
 
 
 @pytest.mark.parametrize("option", [{"freeze_encoder_epochs": 2}, {"encoder_lr_factor": 0.0}])
@@ -212,7 +219,7 @@ def test_frozen_encoder_and_encoder_lr_factor_keep_the_encoder_weights(labelled,
     from warmstart.intensity import fit_intensity
     from warmstart.unet import UNet
 
-    s = BenchSettings(sizes=[1], frame_size=48, patch_size=32, epochs=2, steps_per_epoch=2, batch_size=2,
+    s = BenchSettings(sizes=[1], tile_size=48, patch_size=32, epochs=2, steps_per_epoch=2, batch_size=2,
                       val_slices=2, test_slices=2, early_steps=1, **option)
     pairs = load_pairs(labelled)
     split = make_split(pairs, s)

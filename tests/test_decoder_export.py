@@ -12,7 +12,7 @@ torch = pytest.importorskip("torch")
 from conftest import tiny_corpus  # noqa: E402
 
 import warmstart as ws  # noqa: E402
-from warmstart.errors import ExportError, WarmStartError  # noqa: E402
+from warmstart.errors import ExportError, WeightsMismatchError  # noqa: E402
 from warmstart.pretrain.loop import pretrain  # noqa: E402
 from warmstart.pretrain.settings import PretrainSettings  # noqa: E402
 
@@ -92,7 +92,7 @@ def test_smp_unet_with_matching_widths_and_bilinear_upsampling_takes_the_decoder
     nearest = smp.Unet("resnet18", encoder_weights=None, in_channels=1, classes=2, decoder_channels=(256, 128, 64, 64, 32))
     rep = ws.warm_start(nearest, files["resnet18"])
     assert rep.complete and not rep.decoder and "decoder_interpolation='bilinear'" in rep.decoder_note
-    with pytest.raises(WarmStartError, match="decoder=True"):
+    with pytest.raises(WeightsMismatchError, match="decoder=True"):
         ws.warm_start(nearest, files["resnet18"], decoder=True)
     default = smp.Unet("resnet18", encoder_weights=None, in_channels=1, classes=2, decoder_interpolation="bilinear")
     note = ws.warm_start(default, files["resnet18"]).decoder_note  # smp default widths (256, 128, 64, 32, 16)
@@ -112,7 +112,7 @@ def test_export_refuses_a_decoder_the_method_never_trained(files, tmp_path):
     with pytest.raises(ExportError, match="trains no decoder"):
         ws.export_encoder(files["simclr"], tmp_path / "x.safetensors", with_decoder=True)
     path, m = ws.export_encoder(files["simclr"], tmp_path / "x.safetensors")
-    with pytest.raises(WarmStartError, match="holds no decoder"):
+    with pytest.raises(WeightsMismatchError, match="holds no decoder"):
         ws.warm_start(ws.UNet(m["encoder"]["spec"], 2), path, decoder=True)
 
 

@@ -17,7 +17,7 @@ import pytest
 import torch
 
 import warmstart as ws
-from warmstart.errors import DataMismatchWarning, ExportError, WarmStartError
+from warmstart.errors import DataMismatchWarning, ExportError, WeightsMismatchError
 from warmstart.export.file import read_encoder_file, read_manifest, write_encoder_file
 from warmstart.export.load import adapt_input_channels
 from warmstart.pretrain.loop import pretrain
@@ -294,7 +294,7 @@ def test_monai_flexibleunet_resnet18_is_refused_with_the_reason(r18):
 
     net = FlexibleUNet(in_channels=1, out_channels=2, backbone="resnet18", spatial_dims=2, pretrained=False)
     before = {k: v.clone() for k, v in net.state_dict().items()}
-    with pytest.raises(WarmStartError, match="type A"):
+    with pytest.raises(WeightsMismatchError, match="type A"):
         ws.warm_start(net, r18)
     assert all(torch.equal(before[k], v) for k, v in net.state_dict().items())  # nothing copied
     rep = ws.warm_start(net, r18, strict=False)
@@ -324,18 +324,18 @@ def test_mismatched_depth_or_width_refused_under_strict_and_reported_otherwise(r
     import segmentation_models_pytorch as smp
 
     deeper = smp.Unet("resnet34", encoder_weights=None, in_channels=1, classes=2)  # more blocks per layer
-    with pytest.raises(WarmStartError, match="nothing in the file"):
+    with pytest.raises(WeightsMismatchError, match="nothing in the file"):
         ws.warm_start(deeper, r18)
     rep = ws.warm_start(deeper, r18, strict=False)
     assert rep.applied and rep.missing and all(".layer" in k or "layer" in k for k in rep.missing)
     wider = _basicunet((16, 32, 64, 128, 256, 16))
-    with pytest.raises(WarmStartError, match="shape mismatches"):
+    with pytest.raises(WeightsMismatchError, match="shape mismatches"):
         ws.warm_start(wider, unet8)
     rep = ws.warm_start(wider, unet8, strict=False)
     assert rep.mismatched and ("conv_0.conv_1.conv.weight", (8, 8, 3, 3), (16, 16, 3, 3)) in rep.mismatched
-    with pytest.raises(WarmStartError, match="takes resnet encoders"):
+    with pytest.raises(WeightsMismatchError, match="takes resnet encoders"):
         ws.warm_start(deeper, unet8, layout="smp")
-    with pytest.raises(WarmStartError, match="no layout places"):
+    with pytest.raises(WeightsMismatchError, match="no layout places"):
         ws.warm_start(torch.nn.Linear(3, 4), r18)
 
 
@@ -448,5 +448,5 @@ def test_monai_unet_with_residual_units_is_refused(unet8):
     from monai.networks.nets import UNet as MonaiUNet
 
     net = MonaiUNet(spatial_dims=2, in_channels=1, out_channels=2, channels=(8, 16, 32, 64, 128), strides=(2, 2, 2, 2))
-    with pytest.raises(WarmStartError, match="no layout places"):
+    with pytest.raises(WeightsMismatchError, match="no layout places"):
         ws.warm_start(net, unet8)

@@ -236,7 +236,7 @@ def test_knn_accuracy_against_brute_force_and_in_a_run(corpus, tmp_path):
 def test_cli_pretrain_prints_no_library_advertisements(corpus, tmp_path):
     # Lightning's start-up lines ("Tip: ...", "GPU available: ...") are silenced by default, not only under -q.
     cmd = [sys.executable, "-m", "warmstart", "pretrain", str(corpus), "-o", str(tmp_path / "run"), "--max-steps", "2",
-           "--batch-size", "32", "--num-workers", "0", "--accelerator", "cpu", "--set", "encoder_params={base_width=8}"]
+           "--batch-size", "32", "--loader-workers", "0", "--accelerator", "cpu", "--set", "encoder_params={base_width=8}"]
     out = subprocess.run(cmd, capture_output=True, text=True)
     assert out.returncode == 0, out.stderr
     assert "Tip" not in out.stderr and "GPU available" not in out.stderr and "TPU available" not in out.stderr

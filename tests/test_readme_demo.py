@@ -51,8 +51,8 @@ def test_readme_warmstart_commands_run(tmp_path):
 
 TINY_DEMO = ("corpus.sampling.patch_size=32", "corpus.sampling.stride=16", "corpus.workers=1",
              "pretrain.max_steps=3", "pretrain.batch_size=16", "pretrain.checkpoint_every=1",
-             "bench.sizes=[1, 2]", "bench.seeds=2", "bench.epochs=1", "bench.steps_per_epoch=3",
-             "bench.frame_size=48", "bench.patch_size=32", "bench.val_slices=2", "bench.test_slices=3",
+             "bench.sizes=[1, 2]", "bench.replicates=2", "bench.epochs=1", "bench.steps_per_epoch=3",
+             "bench.tile_size=48", "bench.patch_size=32", "bench.val_slices=2", "bench.test_slices=3",
              "bench.early_steps=2")
 
 
@@ -110,7 +110,7 @@ def test_demo_runs_every_stage_and_reuses_them(tmp_path):
 
 @pytest.mark.slow
 def test_demo_quick_from_the_command_line(tmp_path):
-    proc = subprocess.run([sys.executable, "-m", "warmstart", "-q", "demo", "--quick", "--out", str(tmp_path), "--json"],
+    proc = subprocess.run([sys.executable, "-m", "warmstart", "-q", "demo", "--quick", "--output", str(tmp_path), "--json"],
                           capture_output=True, text=True, timeout=900)
     assert proc.returncode == 0, proc.stderr[-2000:]
     result = json.loads(proc.stdout)

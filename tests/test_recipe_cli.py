@@ -137,3 +137,47 @@ def test_pretrain_without_torch_says_what_to_install(small_archive, tmp_path):
     proc = subprocess.run([sys.executable, "-m", "warmstart", "-q", "pretrain", str(tmp_path / "c.zarr"), "-o",
                            str(tmp_path / "run")], env=env, capture_output=True, text=True, timeout=120)
     assert proc.returncode == 1 and "pip install 'warmstart[train]'" in proc.stderr
+
+
+# --- renamed options and keys: old spellings still work for one release ------------------------
+@pytest.mark.parametrize("argv, dest, value", [
+    (["bench", "set/", "-o", "b", "--seeds", "3"], "replicates", 3),
+    (["bench", "set/", "-o", "b", "--encoder", "a.safetensors", "--encoder-file", "b.safetensors"], "encoder_files",
+     ["a.safetensors", "b.safetensors"]),
+    (["demo", "--out", "d"], "output", "d"),
+    (["pretrain", "c.zarr", "-o", "r", "--num-workers", "2"], "num_workers", 2),
+])
+def test_deprecated_options_map_to_the_new_ones_with_a_note(argv, dest, value, capsys):
+    from warmstart.cli import build_parser
+
+    args = build_parser().parse_args(argv)
+    assert getattr(args, dest) == value
+    assert "is now" in capsys.readouterr().err
+
+
+def test_new_option_names_print_no_note(capsys):
+    from warmstart.cli import build_parser
+
+    args = build_parser().parse_args(["bench", "set/", "-o", "b", "--replicates", "3", "--encoder-file", "a.safetensors"])
+    assert (args.replicates, args.encoder_files) == (3, ["a.safetensors"])
+    args = build_parser().parse_args(["demo", "-o", "d"])
+    assert args.output == "d" and capsys.readouterr().err == ""
+
+
+def test_renamed_recipe_keys_are_read_with_a_warning(tmp_path):
+    p = tmp_path / "old.toml"
+    p.write_text("[bench]\nseeds = 3\nframe_size = 64\npatch_size = 32\n")
+    with pytest.warns(FutureWarning, match="bench.seeds is now called bench.replicates"):
+        r = load_recipe(p)
+    assert (r.bench.replicates, r.bench.tile_size) == (3, 64)
+    p.write_text("[bench]\nseeds = 3\nreplicates = 4\n")
+    with pytest.raises(RecipeError, match="same setting"):
+        load_recipe(p)
+
+
+def test_old_error_class_name_still_imports():
+    from warmstart import errors
+
+    with pytest.warns(FutureWarning, match="WeightsMismatchError"):
+        old = errors.WarmStartError
+    assert old is errors.WeightsMismatchError and issubclass(old, ValueError)

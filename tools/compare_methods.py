@@ -8,7 +8,7 @@
    and the run is reproducible).
 3. Export; restoration and combined are exported with their decoder (whole-U-Net warm start),
    restoration also without it, to see what the decoder adds.
-4. ``warmstart bench`` (recipe ``demo``'s bench table: 1/4/16 frames, 5 seeds) with every file.
+4. ``warmstart bench`` (recipe ``demo``'s bench table: 1/4/16 tiles, 5 replicates) with every file.
 5. Prints one table: per method and size, final test Dice, early Dice and curve area with their
    paired differences against random init (95 % t intervals; ``*`` where the interval excludes
    zero), and the pretraining steps and seconds, and the recommendation of :func:`best_method`.
@@ -16,8 +16,8 @@
 
 Everything is kept in DIR and reused on a rerun (pretraining runs, exports, bench runs).
 
-Usage: python tools/compare_methods.py --out DIR [--minutes 4] [--methods simclr,moco_v2,dense,restore,combined]
-       [--sizes 1,4,16] [--seeds 5]
+Usage: python tools/compare_methods.py -o DIR [--minutes 4] [--methods simclr,moco_v2,dense,restore,combined]
+       [--sizes 1,4,16] [--replicates 5]
 """
 from __future__ import annotations
 
@@ -110,7 +110,7 @@ def _cell(d: dict[str, Any], sign: str = "+") -> str:
 def table(result: dict[str, Any], pretraining: dict[str, dict[str, Any]]) -> str:
     """Markdown comparison table from a bench result and the pretraining summaries."""
     labels = {c["id"]: c for c in result["contenders"]}
-    lines = ["| frames | contender | pretraining | final test Dice | vs random | early Dice vs random | curve area vs random |",
+    lines = ["| tiles | contender | pretraining | final test Dice | vs random | early Dice vs random | curve area vs random |",
              "|---|---|---|---|---|---|---|"]
     for size, rows in result["summary"].items():
         for cid, row in rows.items():
@@ -119,7 +119,7 @@ def table(result: dict[str, Any], pretraining: dict[str, dict[str, Any]]) -> str
             pre = f"{p['steps']} steps, {p['seconds']:.0f} s" if p else ""
             final = _cell(row["test_dice"], sign="")
             vs = row.get("vs_random")
-            cells = [_cell(vs[f]) for f in ("test_dice", "early_dice", "auc")] if vs else ["", "", ""]
+            cells = [_cell(vs[f]) for f in ("test_dice", "early_dice", "curve_area")] if vs else ["", "", ""]
             name = labels[cid]["label"].replace("warm start ", "")
             lines.append(f"| {size} | {name} | {pre} | {final} | " + " | ".join(cells) + " |")
     return "\n".join(lines)
@@ -140,12 +140,12 @@ def best_method(result: dict[str, Any]) -> tuple[str, str]:
         if not rows[0].get("vs_random"):
             continue
         target = bool(rows[0]["vs_random"]["test_dice"].get("significant"))
-        wins = sum(bool(r["vs_random"][f].get("significant")) for r in rows for f in ("test_dice", "early_dice", "auc"))
+        wins = sum(bool(r["vs_random"][f].get("significant")) for r in rows for f in ("test_dice", "early_dice", "curve_area"))
         gain = sum(r["vs_random"]["test_dice"]["mean"] for r in rows) / len(rows)
         stats[cid] = (target, wins, gain)
     cid = max(stats, key=lambda k: stats[k])
     target, wins, gain = stats[cid]
-    why = (f"{'reaches' if target else 'no contender reaches'} a final-Dice gain at {sizes[0]} frame(s) whose 95 % "
+    why = (f"{'reaches' if target else 'no contender reaches'} a final-Dice gain at {sizes[0]} tile(s) whose 95 % "
            f"interval excludes zero; {wins} of {3 * len(sizes)} paired comparisons exclude zero; mean final-Dice gain "
            f"{gain:+.3f}")
     return cid, why
@@ -153,11 +153,11 @@ def best_method(result: dict[str, Any]) -> tuple[str, str]:
 
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--out", required=True, metavar="DIR")
+    ap.add_argument("-o", "--output", required=True, metavar="DIR")
     ap.add_argument("--minutes", type=float, default=4.0, help="pretraining budget per method (wall clock, this machine)")
     ap.add_argument("--methods", default="simclr,moco_v2,dense,restore,combined")
     ap.add_argument("--sizes", default="1,4,16")
-    ap.add_argument("--seeds", type=int, default=5)
+    ap.add_argument("--replicates", type=int, default=5)
     args = ap.parse_args()
     import logging
     import warnings
@@ -168,7 +168,7 @@ def main() -> None:
     warnings.filterwarnings("ignore", category=DeprecationWarning)
     from warmstart.bench.run import run_bench
 
-    root = Path(args.out)
+    root = Path(args.output)
     root.mkdir(parents=True, exist_ok=True)
     methods = [m.strip() for m in args.methods.split(",") if m.strip()]
     unknown = sorted(set(methods) - set(METHOD_PARAMS))
@@ -180,7 +180,7 @@ def main() -> None:
           f"{args.minutes:g} min each", flush=True)
     pretraining = {m: _pretrain(corpus, root, m, recipe.pretrain, args.minutes) for m in methods}
     files = _files(root, methods)
-    bench = dataclasses.replace(recipe.bench, sizes=[int(s) for s in args.sizes.split(",")], seeds=args.seeds)
+    bench = dataclasses.replace(recipe.bench, sizes=[int(s) for s in args.sizes.split(",")], replicates=args.replicates)
     t1 = time.perf_counter()
     result = run_bench(labelled, files, root / "bench", bench, progress=False)
     print(f"bench: {len(result['runs'])} runs in {time.perf_counter() - t1:.0f} s (reused runs count 0 s)")

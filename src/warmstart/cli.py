@@ -31,6 +31,20 @@ def _add_recipe_options(p: argparse.ArgumentParser, names: str = "smoke, cpu-low
         g.add_argument("--channel", type=int, metavar="N", help="channel to read from multi-channel files")
 
 
+def _deprecated_alias(group: Any, old: str, new: str, **kwargs: Any) -> None:
+    """Accept ``old`` as a hidden, deprecated spelling of option ``new`` (for one release; the README's
+    changelog lists them), with a note on stderr each time it is used."""
+    base = argparse._AppendAction if kwargs.get("action") == "append" else argparse._StoreAction
+    kwargs.pop("action", None)
+
+    class _Warned(base):  # type: ignore[misc, valid-type]
+        def __call__(self, parser: Any, namespace: Any, values: Any, option_string: str | None = None) -> None:
+            print(f"warmstart: note: {old} is now {new}; the old name works until the next release", file=sys.stderr)
+            super().__call__(parser, namespace, values, option_string)
+
+    group.add_argument(old, action=_Warned, help=argparse.SUPPRESS, **kwargs)
+
+
 def _int_list(text: str) -> list[int]:
     """``1,4,16`` -> [1, 4, 16] (for list-valued shortcut flags)."""
     try:
@@ -73,7 +87,9 @@ def build_parser() -> argparse.ArgumentParser:
     g.add_argument("--scale-factor", type=float, metavar="F", help="downscale factor where no target / voxel size")
     g.add_argument("--scheme", choices=["percentile", "zscore", "two_point", "fixed"], help="intensity scheme")
     g.add_argument("--seed", type=int)
-    g.add_argument("--workers", type=int, metavar="N", help="worker processes")
+    g.add_argument("--workers", type=int, metavar="N",
+                   help="processes that read and sample sources in parallel on this machine (corpus.workers); "
+                        "the store is the same for any N")
     build.add_argument("--shard", metavar="I/N", help="build only shard I of N (merge shards with 'corpus merge')")
     build.add_argument("--fresh", action="store_true", help="delete an existing store at CORPUS first")
     build.add_argument("--no-report", action="store_true", help="skip writing report/")
@@ -92,7 +108,7 @@ def build_parser() -> argparse.ArgumentParser:
     _add_recipe_options(pre, "smoke, cpu-lowres, gpu-resnet50-moco, ...", "pretrain.lr=3e-4", read_options=False)
     g = pre.add_argument_group("common settings (shortcuts for --set)")
     g.add_argument("--method", choices=["simclr", "moco_v2", "byol", "dense", "restore", "combined"])
-    g.add_argument("--encoder", metavar="NAME", help="resnet_narrow, resnet18, resnet34, resnet50, unet")
+    g.add_argument("--encoder", metavar="NAME", help="encoder architecture: resnet_narrow, resnet18, resnet34, resnet50, unet")
     g.add_argument("--epochs", type=int)
     g.add_argument("--max-steps", type=int)
     g.add_argument("--batch-size", type=int)
@@ -102,7 +118,10 @@ def build_parser() -> argparse.ArgumentParser:
     g.add_argument("--strategy", help="Lightning strategy: auto, ddp, ...")
     g.add_argument("--accelerator", help="cpu, gpu or auto")
     g.add_argument("--precision", choices=["auto", "32-true", "16-mixed", "bf16-mixed"])
-    g.add_argument("--num-workers", type=int, metavar="N", help="DataLoader workers per device")
+    g.add_argument("--loader-workers", dest="num_workers", type=int, metavar="N",
+                   help="data-loader processes per device that read batches from the corpus while the model trains "
+                        "(pretrain.num_workers; 0: read in the training process)")
+    _deprecated_alias(g, "--num-workers", "--loader-workers", dest="num_workers", type=int)
     g.add_argument("--deterministic", action="store_true", default=None, help="deterministic algorithms (identical reruns)")
     pre.add_argument("--resume", action="store_true", help="continue the run in RUN from its last checkpoint")
     pre.add_argument("--json", action="store_true")
@@ -129,15 +148,22 @@ def build_parser() -> argparse.ArgumentParser:
 
     bench = sub.add_parser("bench", help="few-shot segmentation: random init vs warm starts on labelled data",
                            description="Fine-tune the reference U-Net from random weights and from each encoder file "
-                                       "on 1, 4, 16 labelled frames with replicate seeds; report Dice with 95 % "
+                                       "on 1, 4, 16 labelled tiles (a tile: a square labelled crop of one slice), "
+                                       "with replicates; report Dice with 95 % "
                                        "intervals, paired differences and their significance. Rerun to resume.")
-    bench.add_argument("labels", metavar="LABELS", help="folder with images/ and labels/, or a TOML file of pairs")
-    bench.add_argument("--encoder", action="append", default=[], metavar="FILE", help="an encoder file (repeatable)")
+    bench.add_argument("labels", metavar="LABELLED_SET",
+                       help="the labelled set: a folder with images/ and labels/, or a TOML file listing image/label pairs")
+    bench.add_argument("--encoder-file", dest="encoder_files", action="append", default=[], metavar="FILE",
+                       help="an exported encoder file to compare with random initialization (repeatable)")
+    _deprecated_alias(bench, "--encoder", "--encoder-file", dest="encoder_files", action="append")
     bench.add_argument("-o", "--output", required=True, metavar="OUT", help="report folder")
     _add_recipe_options(bench, "bench-cpu, bench-gpu", "bench.lr=3e-4", read_options=False)
     g = bench.add_argument_group("common settings (shortcuts for --set)")
-    g.add_argument("--sizes", type=_int_list, metavar="N,N,...", help="training-set sizes in frames, e.g. 1,4,16")
-    g.add_argument("--seeds", type=int, help="replicates per contender and size")
+    g.add_argument("--sizes", type=_int_list, metavar="N,N,...", help="training-set sizes in tiles, e.g. 1,4,16")
+    g.add_argument("--replicates", type=int, metavar="N", help="fine-tuning runs per contender and size (bench.replicates)")
+    _deprecated_alias(g, "--seeds", "--replicates", dest="replicates", type=int)
+    g.add_argument("--threads", type=int, metavar="N",
+                   help="CPU threads torch uses for each fine-tuning run (bench.threads)")
     g.add_argument("--epochs", type=int)
     bench.add_argument("--json", action="store_true")
 
@@ -147,10 +173,11 @@ def build_parser() -> argparse.ArgumentParser:
                                       "depths) and a held-out labelled set, then scan, build a corpus, pretrain, "
                                       "export, inspect and benchmark random init against the new encoder on 2 CPU "
                                       "cores (about 11 minutes; --quick about 3). Prints the comparison table and the "
-                                      "report paths. Rerunning with the same --out reuses finished stages.")
-    demo.add_argument("--out", metavar="DIR", help="keep everything in DIR (default: a temporary folder)")
+                                      "report paths. Rerunning with the same --output reuses finished stages.")
+    demo.add_argument("-o", "--output", metavar="DIR", help="keep everything in DIR (default: a temporary folder)")
+    _deprecated_alias(demo, "--out", "--output", dest="output")
     demo.add_argument("--quick", action="store_true",
-                      help="fewer volumes, a shorter pretraining and a smaller benchmark (1 and 4 frames, 3 seeds)")
+                      help="fewer volumes, a shorter pretraining and a smaller benchmark (1 and 4 tiles, 3 replicates)")
     demo.add_argument("--json", action="store_true")
 
     merge = csub.add_parser("merge", help="merge shard stores into one")
@@ -371,7 +398,7 @@ def cmd_inspect(args: argparse.Namespace) -> int:
     return 0
 
 
-_BENCH_SHORTCUTS = {"sizes": "sizes", "seeds": "seeds", "epochs": "epochs"}
+_BENCH_SHORTCUTS = {"sizes": "sizes", "replicates": "replicates", "epochs": "epochs", "threads": "threads"}
 
 
 def cmd_bench(args: argparse.Namespace) -> int:
@@ -387,7 +414,7 @@ def cmd_bench(args: argparse.Namespace) -> int:
         return EXIT_ERROR
     from .bench.report import verdicts
 
-    result = run_bench(args.labels, args.encoder, args.output, recipe.bench, progress=not args.quiet)
+    result = run_bench(args.labels, args.encoder_files, args.output, recipe.bench, progress=not args.quiet)
     if args.json:
         _print_json({"summary": result["summary"], "report": result["report"]})
     else:
@@ -404,7 +431,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
     from .demo.run import run_demo
 
     echo = (lambda _line: None) if args.json else print
-    result = run_demo(args.out, quick=args.quick, progress=not args.quiet, echo=echo)
+    result = run_demo(args.output, quick=args.quick, progress=not args.quiet, echo=echo)
     if args.json:
         _print_json(result)
     return 0

@@ -16,9 +16,12 @@ __all__ = [
     "CorpusError",
     "PretrainError",
     "ExportError",
-    "WarmStartError",
+    "WeightsMismatchError",
     "DataMismatchWarning",
 ]
+
+# Old name -> new name, importable (with a FutureWarning) for one release; see the README's changelog.
+_RENAMED = {"WarmStartError": "WeightsMismatchError"}
 
 
 class WarmstartError(Exception):
@@ -58,9 +61,19 @@ class ExportError(WarmstartError, ValueError):
     unknown version."""
 
 
-class WarmStartError(WarmstartError, ValueError):
+class WeightsMismatchError(WarmstartError, ValueError):
     """An encoder file's weights do not fit the network they are asked to warm-start."""
 
 
 class DataMismatchWarning(UserWarning):
     """New data, once prepared, does not look like the corpus the encoder was trained on."""
+
+
+def __getattr__(name: str) -> type:
+    if name in _RENAMED:
+        import warnings
+
+        warnings.warn(f"warmstart.errors.{name} is now {_RENAMED[name]}; the old name works until the next release",
+                      FutureWarning, stacklevel=2)
+        return globals()[_RENAMED[name]]
+    raise AttributeError(f"module 'warmstart.errors' has no attribute {name!r}")

@@ -16,7 +16,7 @@ from typing import Any, Mapping
 
 from ..errors import RecipeError
 
-__all__ = ["settings_from_dict", "require_positive"]
+__all__ = ["settings_from_dict", "require_positive", "renamed_keys"]
 
 
 def _check_type(value: Any, hint: Any, key: str) -> Any:
@@ -57,6 +57,27 @@ def _check_type(value: Any, hint: Any, key: str) -> Any:
             raise RecipeError(f"{key} must be a string, got {value!r}")
         return value
     return value
+
+
+def renamed_keys(d: Mapping[str, Any], renames: Mapping[str, str], where: str) -> dict[str, Any]:
+    """Read old key names as the new ones, with a FutureWarning (shown by default) naming both.
+
+    Renamed keys are read for one release after the rename (see the README's changelog). Giving
+    both the old and the new name is an error.
+    """
+    import warnings
+
+    out = dict(d) if isinstance(d, Mapping) else d
+    if not isinstance(out, dict):
+        return out
+    for old, new in renames.items():
+        if old in out:
+            if new in out:
+                raise RecipeError(f"{where}.{old} and {where}.{new} are the same setting (the first is its old name); keep {new}")
+            warnings.warn(f"{where}.{old} is now called {where}.{new}; the old name is read until the next release",
+                          FutureWarning, stacklevel=3)
+            out[new] = out.pop(old)
+    return out
 
 
 def require_positive(obj: Any, section: str, *names: str) -> None:

@@ -40,20 +40,20 @@ class LabelledPair:
 
 @dataclass
 class Split:
-    """Which slices test and validate, and the training frames (nested by order).
+    """Which slices test and validate, and the training tiles (nested by order).
 
-    ``test``/``val``: (pair, z) whole slices. ``frames``: (pair, z, y, x, h, w), the first ``n``
+    ``test``/``val``: (pair, z) whole slices. ``tiles``: (pair, z, y, x, h, w), the first ``n``
     of them are the training set of size ``n``.
     """
 
     test: list[tuple[int, int]] = field(default_factory=list)
     val: list[tuple[int, int]] = field(default_factory=list)
-    frames: list[tuple[int, int, int, int, int, int]] = field(default_factory=list)
+    tiles: list[tuple[int, int, int, int, int, int]] = field(default_factory=list)
     seed: int = 0
 
     def to_dict(self) -> dict[str, Any]:
         return {"seed": self.seed, "test": [list(t) for t in self.test], "val": [list(v) for v in self.val],
-                "frames": [list(f) for f in self.frames]}
+                "tiles": [list(f) for f in self.tiles]}
 
 
 def read_pairs(labels: str | os.PathLike[str]) -> list[tuple[str, Path, Path]]:
@@ -121,10 +121,10 @@ def n_classes(pairs: list[LabelledPair], ignore_label: int | None = None) -> int
 
 
 def make_split(pairs: list[LabelledPair], s: BenchSettings) -> Split:
-    """Test and validation slices, then training frames at least ``gap_slices`` away from them.
+    """Test and validation slices, then training tiles at least ``gap_slices`` away from them.
 
     Slices are drawn evenly over all pairs (each pair in turn) from a generator seeded with
-    ``split_seed``; frames prefer regions holding at least two classes (up to 20 tries each).
+    ``split_seed``; tiles prefer regions holding at least two classes (up to 20 tries each).
     """
     rng = np.random.default_rng(s.split_seed)
     slices = [(i, z) for i, p in enumerate(pairs) for z in range(p.image.shape[0])]
@@ -140,18 +140,18 @@ def make_split(pairs: list[LabelledPair], s: BenchSettings) -> Split:
     if not train:
         # Single images or very thin volumes: no gap can be kept, the remaining slices train.
         train = list(order[need:])
-    frames = []
+    tiles = []
     want = max(s.sizes)
     for k in range(want):
         best = None
         for _ in range(20):
             i, z = train[int(rng.integers(len(train)))]
-            h, w = (min(s.frame_size, n) for n in pairs[i].image.shape[1:])
+            h, w = (min(s.tile_size, n) for n in pairs[i].image.shape[1:])
             y = int(rng.integers(pairs[i].image.shape[1] - h + 1))
             x = int(rng.integers(pairs[i].image.shape[2] - w + 1))
             best = (i, z, y, x, h, w)
             region = pairs[i].label[z, y:y + h, x:x + w]
             if len(np.unique(region)) >= 2:
                 break
-        frames.append(best)  # type: ignore[arg-type]
-    return Split(test, val, frames, s.split_seed)  # type: ignore[arg-type]
+        tiles.append(best)  # type: ignore[arg-type]
+    return Split(test, val, tiles, s.split_seed)  # type: ignore[arg-type]

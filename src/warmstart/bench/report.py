@@ -14,7 +14,7 @@ from ..base.atomic import write_json
 
 __all__ = ["write_report", "markdown", "verdicts"]
 
-_NAMES = {"test_dice": "final test Dice", "early_dice": "early validation Dice", "auc": "area under the validation curve"}
+_NAMES = {"test_dice": "final test Dice", "early_dice": "early validation Dice", "curve_area": "curve area"}
 
 
 def _num(x: Any, d: int = 3) -> str:
@@ -41,9 +41,9 @@ def verdicts(result: dict[str, Any]) -> list[str]:
                     continue
                 sig = "significant at 95 %" if d["significant"] else "not significant at 95 %"
                 p = "n/a" if d["wilcoxon_p"] is None else f"{d['wilcoxon_p']:.3g}"
-                out.append(f"{labels[cid]}, {n} frame(s), {_NAMES[f]}: {d['mean']:+.3f} vs random "
+                out.append(f"{labels[cid]}, {n} tile(s), {_NAMES[f]}: {d['mean']:+.3f} vs random "
                            f"(95 % CI {_num(d['low'])} to {_num(d['high'])}, Wilcoxon p = {p}, better in {d['wins']} of "
-                           f"{d['pairs']} seeds): {sig}.")
+                           f"{d['pairs']} replicates): {sig}.")
     return out
 
 
@@ -51,14 +51,14 @@ def markdown(result: dict[str, Any]) -> str:
     s = result["settings"]
     labels = {c["id"]: c["label"] for c in result["contenders"]}
     lines = ["# Few-shot segmentation benchmark", "",
-             f"{len(result['contenders'])} contenders, training sets of {', '.join(map(str, s['sizes']))} frame(s) of "
-             f"{s['frame_size']} px, {s['seeds']} seeds each, {s['epochs']} epochs x {s['steps_per_epoch']} steps of "
+             f"{len(result['contenders'])} contenders, training sets of {', '.join(map(str, s['sizes']))} tile(s) of "
+             f"{s['tile_size']} px, {s['replicates']} replicates each, {s['epochs']} epochs x {s['steps_per_epoch']} steps of "
              f"{s['batch_size']} patches of {s['patch_size']} px; {result['classes']} classes; test: "
              f"{len(result['split']['test'])} whole slices, validation: {len(result['split']['val'])}; device "
-             f"{result['device']}. Means with 95 % Student t intervals over seeds; differences are paired by seed "
+             f"{result['device']}. Means with 95 % Student t intervals over replicates; differences are paired by replicate "
              "(same patches, same decoder initialization).", ""]
     for n, rows in result["summary"].items():
-        lines += [f"## {n} training frame(s)", "",
+        lines += [f"## {n} training tile(s)", "",
                   "| contender | final test Dice | early Dice | curve area | epochs to "
                   f"{s['dice_threshold']:g} (reached) | test Dice vs random | early Dice vs random |",
                   "|---|---|---|---|---|---|---|"]
@@ -71,11 +71,16 @@ def markdown(result: dict[str, Any]) -> str:
                     return ""
                 return f"{_ci(vs[f])}{' *' if vs[f]['significant'] else ''}"
 
-            lines.append(f"| {labels[cid]} | {_ci(row['test_dice'])} | {_ci(row['early_dice'])} | {_ci(row['auc'])} | "
+            lines.append(f"| {labels[cid]} | {_ci(row['test_dice'])} | {_ci(row['early_dice'])} | {_ci(row['curve_area'])} | "
                          f"{_ci(e, 1)} ({e['reached']}/{e['runs']}) | {d('test_dice')} | {d('early_dice')} |")
         lines.append("")
-    lines += ["`*`: the 95 % interval of the paired difference excludes zero. Early Dice: validation Dice after "
-              f"{s['early_steps']} steps.", "", "## In words", ""] + [f"- {v}" for v in verdicts(result)] + [""]
+    lines += [f"A tile is a square labelled crop of one slice (up to {s['tile_size']} px a side); the training "
+              "set of each size holds that many tiles. Early Dice: validation Dice after "
+              f"{s['early_steps']} steps. Curve area: the mean validation Dice over the epochs (the area under "
+              "the validation-Dice curve divided by its length; higher means good Dice sooner). Epochs to "
+              f"{s['dice_threshold']:g}: the first epoch whose validation Dice reaches {s['dice_threshold']:g}, averaged "
+              "over the replicates that reached it; (reached) counts those replicates out of all. "
+              "`*`: the 95 % interval of the paired difference excludes zero.", "", "## In words", ""] + [f"- {v}" for v in verdicts(result)] + [""]
     lines += ["## Contenders", ""]
     for c in result["contenders"]:
         lines.append(f"- **{c['label']}** (`{c['id']}`): {c['spec']['name']} {c['spec']['params']}; input: {c['normalization']}")
@@ -113,9 +118,9 @@ def _plots(result: dict[str, Any], pairs: Sequence[Any], out: Path) -> list[tupl
         for k, vals in enumerate(data):
             ax.scatter(np.full(len(vals), k + 1) + np.linspace(-0.08, 0.08, len(vals)), vals, s=14, zorder=3)
         ax.set_xticks(range(1, len(cons) + 1), [c["id"] for c in cons], rotation=30, ha="right")
-        ax.set_title(f"{n} frame(s)")
+        ax.set_title(f"{n} tile(s)")
     axes[0][0].set_ylabel("test Dice (foreground mean)")
-    figs.append(("Final test Dice per seed", _png(fig)))
+    figs.append(("Final test Dice per replicate", _png(fig)))
     fig, axes = plt.subplots(1, len(sizes), figsize=(3.2 * len(sizes), 3.0), squeeze=False, sharey=True)
     for ax, n in zip(axes[0], sizes):
         for c in cons:
@@ -128,7 +133,7 @@ def _plots(result: dict[str, Any], pairs: Sequence[Any], out: Path) -> list[tupl
             ax.plot(ep, m, label=c["id"])
             if curves.shape[0] > 1:
                 ax.fill_between(ep, [x["low"] for x in ci], [x["high"] for x in ci], alpha=0.2)
-        ax.set_title(f"{n} frame(s)")
+        ax.set_title(f"{n} tile(s)")
         ax.set_xlabel("epoch")
     axes[0][0].set_ylabel("validation Dice")
     axes[0][-1].legend(fontsize=7)
@@ -150,7 +155,7 @@ def _plots(result: dict[str, Any], pairs: Sequence[Any], out: Path) -> list[tupl
                 axes[row][col].set_axis_off()
                 if row == 0:
                     axes[row][col].set_title(title, fontsize=8)
-        figs.append((f"Test predictions, {n0} frame(s), seed 0", _png(fig)))
+        figs.append((f"Test predictions, {n0} tile(s), replicate 0", _png(fig)))
     return figs
 
 

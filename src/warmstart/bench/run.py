@@ -1,4 +1,4 @@
-"""``warmstart bench``: every (contender, size, seed) run, resumable, then the summary and report."""
+"""``warmstart bench``: every (contender, size, replicate) run, resumable, then the summary and report."""
 from __future__ import annotations
 
 import json
@@ -18,7 +18,9 @@ from .stats import epochs_to_reach, mean_ci, paired_difference
 
 __all__ = ["Contender", "run_bench", "summarize"]
 
-FIGURES = ("test_dice", "early_dice", "auc")
+FIGURES = ("test_dice", "early_dice", "curve_area")
+# Figures renamed since: an older run record is read with the new names.
+_RENAMED_FIGURES = {"auc": "curve_area"}
 
 
 @dataclass
@@ -125,7 +127,7 @@ def _device(s: BenchSettings) -> Any:
 
 def summarize(runs: list[dict[str, Any]], contenders: list[Contender], s: BenchSettings) -> dict[str, Any]:
     """Per size: mean and CI of every figure per contender, and paired differences against the
-    matching random initialization (paired by seed). Computed from the run records alone."""
+    matching random initialization (paired by replicate). Computed from the run records alone."""
     out: dict[str, Any] = {}
     for n in s.sizes:
         at = [r for r in runs if r["size"] == n]
@@ -159,7 +161,7 @@ def summarize(runs: list[dict[str, Any]], contenders: list[Contender], s: BenchS
 
 def run_bench(labels: str | os.PathLike[str], encoders: Sequence[str | os.PathLike[str]], out: str | os.PathLike[str],
               settings: BenchSettings | None = None, *, progress: bool = True) -> dict[str, Any]:
-    """Fine-tune random initialization and every encoder file on the same labelled frames.
+    """Fine-tune random initialization and every encoder file on the same labelled tiles.
 
     Parameters
     ----------
@@ -177,8 +179,8 @@ def run_bench(labels: str | os.PathLike[str], encoders: Sequence[str | os.PathLi
         What ``bench.json`` holds: settings, split, contenders, runs, summary and report paths.
     """
     import torch
-    from ..base.progress import progress_bar
 
+    from ..base.progress import progress_bar
     from .report import write_report
 
     s = settings or BenchSettings()
@@ -192,14 +194,15 @@ def run_bench(labels: str | os.PathLike[str], encoders: Sequence[str | os.PathLi
     contenders = _contenders(encoders, s, pairs)
     labs = [p.label for p in pairs]
     device = _device(s)
-    planned = [(n, seed, c) for n in s.sizes for seed in range(s.seeds) for c in contenders]
+    planned = [(n, seed, c) for n in s.sizes for seed in range(s.replicates) for c in contenders]
     prepared: dict[str, list[np.ndarray]] = {}
     runs = []
     bar = progress_bar(planned, desc="bench runs", unit="run", disable=not progress)
     for n, seed, c in bar:
         path = out / "runs" / f"{c.id}-n{n}-s{seed}.json"
         if path.exists():
-            runs.append(json.loads(path.read_text()))
+            old = json.loads(path.read_text())
+            runs.append({_RENAMED_FIGURES.get(k, k): v for k, v in old.items()})
             continue
         if c.id not in prepared:
             prepared[c.id] = _prepared(c, pairs)

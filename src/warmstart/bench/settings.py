@@ -5,10 +5,13 @@ import dataclasses
 from dataclasses import dataclass, field
 from typing import Any, Mapping
 
-from ..base.settings import require_positive, settings_from_dict
+from ..base.settings import renamed_keys, require_positive, settings_from_dict
 from ..errors import RecipeError
 
 __all__ = ["BenchSettings"]
+
+# Old key -> new key, read for one release (README changelog).
+_RENAMED = {"seeds": "replicates", "frame_size": "tile_size"}
 
 
 @dataclass
@@ -18,14 +21,15 @@ class BenchSettings:
     Parameters
     ----------
     sizes : list of int
-        Training-set sizes in frames; nested (the 4 frames include the 1, the 16 the 4).
-    seeds : int
-        Replicates per (contender, size). Replicate ``r`` draws the same patches and the same
-        decoder initialization for every contender.
-    frame_size : int
-        Side of the square training frames (pixels; clipped to the image).
+        Training-set sizes in tiles; nested (the 4 tiles include the 1, the 16 the 4). A tile is
+        a square labelled crop of one slice of a labelled volume.
+    replicates : int
+        Fine-tuning runs per (contender, size) (formerly ``seeds``). Replicate ``r`` draws the same
+        patches and the same decoder initialization for every contender.
+    tile_size : int
+        Side of the square training tiles (pixels; clipped to the image; formerly ``frame_size``).
     patch_size : int
-        Side of the random patches drawn from the frames (pixels; at most the frame's side).
+        Side of the random patches drawn from the tiles (pixels; at most the tile's side).
     epochs, steps_per_epoch, batch_size : int
         Fine-tuning length: ``epochs * steps_per_epoch`` optimizer steps of ``batch_size`` patches.
     lr, weight_decay : float
@@ -37,7 +41,7 @@ class BenchSettings:
     val_slices, test_slices : int
         Whole slices in the fixed validation and test sets.
     gap_slices : int
-        Training frames keep at least this many slices away from validation and test slices
+        Training tiles keep at least this many slices away from validation and test slices
         (neighbouring slices of a volume are nearly the same image).
     split_seed : int
         Seed of the split (recorded in the report).
@@ -54,12 +58,14 @@ class BenchSettings:
     device : str
         ``auto`` (a GPU when there is one), ``cpu`` or ``cuda``.
     threads : int, optional
-        torch threads on CPU (default: torch's choice).
+        CPU threads torch uses for each fine-tuning run (default: torch's choice). Not to be
+        confused with ``corpus.workers`` (processes that build a corpus) or
+        ``pretrain.num_workers`` (data-loader processes that feed pretraining).
     """
 
     sizes: list[int] = field(default_factory=lambda: [1, 4, 16])
-    seeds: int = 5
-    frame_size: int = 256
+    replicates: int = 5
+    tile_size: int = 256
     patch_size: int = 128
     epochs: int = 20
     steps_per_epoch: int = 10
@@ -83,12 +89,12 @@ class BenchSettings:
 
     def __post_init__(self) -> None:
         if not self.sizes or any(int(n) < 1 for n in self.sizes):
-            raise RecipeError(f"bench.sizes must be a non-empty list of positive frame counts, got {self.sizes}")
+            raise RecipeError(f"bench.sizes must be a non-empty list of positive tile counts, got {self.sizes}")
         self.sizes = sorted({int(n) for n in self.sizes})
-        require_positive(self, "bench", "seeds", "frame_size", "patch_size", "epochs", "steps_per_epoch", "batch_size",
+        require_positive(self, "bench", "replicates", "tile_size", "patch_size", "epochs", "steps_per_epoch", "batch_size",
                          "test_slices", "val_slices", "early_steps")
-        if self.patch_size > self.frame_size:
-            raise RecipeError(f"bench.patch_size {self.patch_size} is larger than bench.frame_size {self.frame_size}")
+        if self.patch_size > self.tile_size:
+            raise RecipeError(f"bench.patch_size {self.patch_size} is larger than bench.tile_size {self.tile_size}")
         if not self.lr > 0 or self.encoder_lr_factor < 0 or self.gap_slices < 0 or self.freeze_encoder_epochs < 0:
             raise RecipeError("bench.lr must be > 0; encoder_lr_factor, gap_slices and freeze_encoder_epochs >= 0")
         if not 0 < self.dice_threshold <= 1:
@@ -105,4 +111,4 @@ class BenchSettings:
 
     @classmethod
     def from_dict(cls, d: Mapping[str, Any], where: str = "bench") -> "BenchSettings":
-        return settings_from_dict(cls, d, where)
+        return settings_from_dict(cls, renamed_keys(d, _RENAMED, where), where)

@@ -1,4 +1,4 @@
-"""One benchmark run: fine-tune the reference U-Net on n frames, validate every epoch, test at the end."""
+"""One benchmark run: fine-tune the reference U-Net on n tiles, validate every epoch, test at the end."""
 from __future__ import annotations
 
 import math
@@ -16,20 +16,20 @@ from .stats import curve_area, dice_counts, dice_from_counts, epochs_to_reach
 __all__ = ["patch_plan", "fine_tune", "predict_slice"]
 
 
-def patch_plan(split: Split, n_frames: int, s: BenchSettings, seed: int) -> np.ndarray:
-    """Every step's patches, fixed by (seed, n_frames) alone, so every contender sees the same ones.
+def patch_plan(split: Split, n_tiles: int, s: BenchSettings, seed: int) -> np.ndarray:
+    """Every step's patches, fixed by (seed, n_tiles) alone, so every contender sees the same ones.
 
     Returns
     -------
-    (steps, batch, 6) int64: frame index, top, left (in the frame), vertical flip, horizontal
+    (steps, batch, 6) int64: tile index, top, left (in the tile), vertical flip, horizontal
     flip, quarter turns.
     """
-    rng = np.random.default_rng([seed, n_frames, 7919])
+    rng = np.random.default_rng([seed, n_tiles, 7919])
     steps, b = s.total_steps, s.batch_size
     out = np.zeros((steps, b, 6), dtype=np.int64)
-    out[..., 0] = rng.integers(n_frames, size=(steps, b))
-    for k in range(n_frames):
-        _, _, _, _, h, w = split.frames[k]
+    out[..., 0] = rng.integers(n_tiles, size=(steps, b))
+    for k in range(n_tiles):
+        _, _, _, _, h, w = split.tiles[k]
         p = min(s.patch_size, h, w)
         sel = out[..., 0] == k
         out[..., 1][sel] = rng.integers(h - p + 1, size=int(sel.sum()))
@@ -43,7 +43,7 @@ def _batch(images: Sequence[np.ndarray], labels: Sequence[np.ndarray], split: Sp
            patch: int) -> tuple[torch.Tensor, torch.Tensor]:
     xs, ys = [], []
     for f, top, left, fv, fh, turns in plan:
-        i, z, y, x, h, w = split.frames[int(f)]
+        i, z, y, x, h, w = split.tiles[int(f)]
         p = min(patch, h, w)
         img = images[i][z, y + top:y + top + p, x + left:x + left + p]
         lab = labels[i][z, y + top:y + top + p, x + left:x + left + p]
@@ -93,7 +93,7 @@ def _foreground_mean(d: np.ndarray) -> float:
 
 
 def fine_tune(make_model: Callable[[], torch.nn.Module], images: Sequence[np.ndarray], labels: Sequence[np.ndarray],
-              split: Split, n_frames: int, seed: int, classes: int, s: BenchSettings, device: torch.device,
+              split: Split, n_tiles: int, seed: int, classes: int, s: BenchSettings, device: torch.device,
               keep_predictions: int = 0) -> dict[str, Any]:
     """Fine-tune one network and measure it.
 
@@ -104,7 +104,7 @@ def fine_tune(make_model: Callable[[], torch.nn.Module], images: Sequence[np.nda
         same for every contender).
     images, labels : sequences of (Z, Y, X) arrays
         Prepared (normalized) images of this contender and their labels.
-    split, n_frames, seed, classes, s, device
+    split, n_tiles, seed, classes, s, device
     keep_predictions : int
         Also return the predictions of this many test slices (for the report's montage).
 
@@ -112,7 +112,7 @@ def fine_tune(make_model: Callable[[], torch.nn.Module], images: Sequence[np.nda
     -------
     dict
         ``val_dice`` per epoch, ``early_dice`` (validation after ``early_steps`` steps),
-        ``test_dice`` (mean foreground), ``test_dice_per_class``, ``auc``, ``epochs_to_threshold``,
+        ``test_dice`` (mean foreground), ``test_dice_per_class``, ``curve_area``, ``epochs_to_threshold``,
         ``seconds`` and optionally ``predictions``.
     """
     torch.manual_seed(seed)
@@ -132,7 +132,7 @@ def fine_tune(make_model: Callable[[], torch.nn.Module], images: Sequence[np.nda
                             weight_decay=s.weight_decay)
     total = s.total_steps
     sched = torch.optim.lr_scheduler.LambdaLR(opt, lambda k: 0.5 * (1 + math.cos(math.pi * min(k, total) / total)))
-    plan = patch_plan(split, n_frames, s, seed)
+    plan = patch_plan(split, n_tiles, s, seed)
     t0 = time.perf_counter()
     val_curve: list[float] = []
     early = None
@@ -155,7 +155,7 @@ def fine_tune(make_model: Callable[[], torch.nn.Module], images: Sequence[np.nda
     test = _evaluate(model, images, labels, split.test, classes, s.ignore_label, device)
     out: dict[str, Any] = {
         "val_dice": val_curve, "early_dice": early if early is not None else val_curve[0],
-        "test_dice": _foreground_mean(test), "test_dice_per_class": test.tolist(), "auc": curve_area(val_curve),
+        "test_dice": _foreground_mean(test), "test_dice_per_class": test.tolist(), "curve_area": curve_area(val_curve),
         "epochs_to_threshold": epochs_to_reach(val_curve, s.dice_threshold),
         "final_loss": float(loss.detach()), "seconds": round(time.perf_counter() - t0, 2),
     }

@@ -233,10 +233,10 @@ def _bench_stage(labelled: Path, encoder: Path, out: Path, settings: Any, progre
                  timed: Callable[[str], Callable[[], None]]) -> dict[str, Any]:
     from ..bench.run import run_bench
 
-    n = len(settings.sizes) * settings.seeds * 2
+    n = len(settings.sizes) * settings.replicates * 2
     finished = len(list((out / "runs").glob("*-n*-s*[0-9].json"))) if (out / "runs").exists() else 0
     echo(f"[7/7] benchmark on the held-out labelled filters: random init vs the warm start, "
-         f"{settings.sizes} frames x {settings.seeds} seeds ({n} fine-tuning runs, {min(finished, n)} already done)")
+         f"{settings.sizes} tiles x {settings.replicates} replicates ({n} fine-tuning runs, {min(finished, n)} already done)")
     done = timed("benchmark")
     result = run_bench(labelled, [encoder], out, settings, progress=progress)
     done()

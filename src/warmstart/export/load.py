@@ -8,7 +8,7 @@ from typing import Any
 
 import numpy as np
 
-from ..errors import ExportError, WarmStartError
+from ..errors import ExportError, WeightsMismatchError
 from .file import read_encoder_file
 from .layouts import LAYOUTS, Layout, family
 
@@ -240,9 +240,9 @@ def _choose(model: Any, ours: dict[str, Any], theirs: dict[str, Any], fam: str, 
             layout: str) -> Plan:
     if layout != "auto":
         if layout not in LAYOUTS:
-            raise WarmStartError(f"unknown layout {layout!r}; known: auto, {', '.join(LAYOUTS)}")
+            raise WeightsMismatchError(f"unknown layout {layout!r}; known: auto, {', '.join(LAYOUTS)}")
         if fam not in LAYOUTS[layout].families:
-            raise WarmStartError(f"{file}: layout {layout!r} takes {'/'.join(LAYOUTS[layout].families)} encoders, "
+            raise WeightsMismatchError(f"{file}: layout {layout!r} takes {'/'.join(LAYOUTS[layout].families)} encoders, "
                                  f"the file holds a {fam} encoder")
         return _plan(LAYOUTS[layout], ours, theirs, first_conv, file)
     lib = _library(model)
@@ -258,7 +258,7 @@ def _choose(model: Any, ours: dict[str, Any], theirs: dict[str, Any], fam: str, 
     best = max(range(len(plans)), key=lambda i: (named(reports[i]) - len(reports[i].missing), cands[i].library == lib, -i))
     if not named(reports[best]):
         sample = ", ".join(list(theirs)[:3])
-        raise WarmStartError(f"{file}: no layout places any of its {len(ours)} tensors in {type(model).__name__} "
+        raise WeightsMismatchError(f"{file}: no layout places any of its {len(ours)} tensors in {type(model).__name__} "
                              f"(its keys look like {sample}); pass layout= one of {', '.join(LAYOUTS)}")
     return plans[best]
 
@@ -292,7 +292,7 @@ def warm_start(model: Any, file: str | os.PathLike[str], layout: str = "auto", s
 
     Raises
     ------
-    WarmStartError
+    WeightsMismatchError
         ``strict`` and the file does not fit (the message is the report), or no layout fits.
     ExportError
         The file is damaged, altered or of an unknown version.
@@ -309,14 +309,14 @@ def warm_start(model: Any, file: str | os.PathLike[str], layout: str = "auto", s
     elif dec:
         dcopy, rep.decoder_note = _plan_decoder(LAYOUTS[rep.layout], dec, theirs, model)
         if decoder and not dcopy:
-            raise WarmStartError(f"{file}: decoder=True but the decoder was {rep.decoder_note}")
+            raise WeightsMismatchError(f"{file}: decoder=True but the decoder was {rep.decoder_note}")
         copy.update(dcopy)
         rep.decoder = sorted(dcopy)
         rep.untouched -= len(dcopy)
     elif decoder:
-        raise WarmStartError(f"{file}: decoder=True but the file holds no decoder (export it with --with-decoder)")
+        raise WeightsMismatchError(f"{file}: decoder=True but the file holds no decoder (export it with --with-decoder)")
     if strict and not rep.complete:
-        raise WarmStartError(f"{rep}\n(strict: nothing was copied; pass strict=False to load what fits)")
+        raise WeightsMismatchError(f"{rep}\n(strict: nothing was copied; pass strict=False to load what fits)")
     with torch.no_grad():
         model.load_state_dict(copy, strict=False)
     rep.applied = True
