@@ -276,3 +276,63 @@ def test_python_api_top_level():
     assert callable(warmstart.open_volume) and callable(warmstart.fit_intensity)
     with pytest.raises(AttributeError):
         warmstart.no_such_thing  # noqa: B018
+
+
+def test_modality_from_dicom_and_from_the_recipe_per_folder(tmp_path):
+    # DICOM's Modality tag (pydicom's CT_small.dcm template says CT) is recorded as it stands; the
+    # recipe tags other folders; formats are kept apart from modalities.
+    from conftest import write_dicom_series
+    from warmstart.corpus.settings import ReadSettings
+
+    root = tmp_path / "archive"
+    write_dicom_series(root / "clinic" / "series", np.zeros((4, 48, 48), np.float32) + np.arange(48) * 10.0 - 200)
+    (root / "seeds").mkdir()
+    np.save(root / "seeds" / "s1.npy", textured(seed=7))
+    np.save(root / "loose.npy", textured(seed=8))
+    s = CorpusSettings(read=ReadSettings(modality={"seeds": "micro-CT"}), sampling=SMALL.sampling)
+    res = build_corpus(root, tmp_path / "c.zarr", s, report=False, progress=False)
+    m = open_corpus(res.path).manifest
+    by = {e["name"]: e.get("modality") for e in m["sources"] if e["status"] == "ok"}
+    assert by == {"clinic/series": "CT", "seeds/s1.npy": "micro-CT", "loose.npy": None}
+    assert m["modalities"] == ["CT", "micro-CT"] and m["formats"] == {"dicom": 1, "npy": 2}
+    assert m["clinical"] is True
+
+
+def test_a_version_1_corpus_manifest_is_read_in_the_new_layout(small_archive, tmp_path):
+    import shutil
+
+    res = build_corpus(small_archive, tmp_path / "c.zarr", SMALL, report=False, progress=False)
+    new = open_corpus(res.path).manifest
+    old_store = tmp_path / "old.zarr"
+    shutil.copytree(res.path, old_store)
+    v1 = json.loads((old_store / "manifest.json").read_text())
+    # The layout warmstart 0.1.0 wrote: no format, voxel target as "patch", formats among modalities.
+    del v1["format"], v1["formats"]
+    v1["format_version"] = 1
+    v1["voxel_size_um"] = {"source_range": v1["voxel_size_um"]["source_range"], "patch": None,
+                           "unknown_sources": v1["voxel_size_um"]["unknown_sources"]}
+    v1["modalities"] = sorted({e["format"] for e in v1["sources"] if e["status"] == "ok"})
+    for e in v1["sources"]:
+        e.pop("modality", None)
+    (old_store / "manifest.json").write_text(json.dumps(v1))
+    got = open_corpus(old_store).manifest
+    assert got["format_version"] == 2 and got["voxel_size_um"] == new["voxel_size_um"]
+    assert got["modalities"] == new["modalities"] == [] and got["formats"] == new["formats"]
+    v1["format_version"] = 7
+    (old_store / "manifest.json").write_text(json.dumps(v1))
+    with pytest.raises(CorpusError, match="version 7"):
+        open_corpus(old_store)
+
+
+def test_corpus_show_and_summary_md_use_the_same_headings(small_archive, tmp_path, capsys):
+    from warmstart.cli import main
+    from warmstart.corpus.report import SUMMARY_COLUMNS
+
+    res = build_corpus(small_archive, tmp_path / "c.zarr", SMALL, report=True, progress=False)
+    assert main(["-q", "corpus", "show", str(res.path)]) == 0
+    shown = capsys.readouterr().out.splitlines()
+    header = next(line for line in shown if line.startswith("#"))
+    assert header.split() == " ".join(SUMMARY_COLUMNS).split()
+    md = (res.path / "report" / "summary.md").read_text()
+    assert "| " + " | ".join(SUMMARY_COLUMNS) + " | files |" in md
+    assert "µm" in header and " um" not in md

@@ -85,7 +85,15 @@ def test_manifest_records_the_input_contract(corpus, r18):
     assert m["standardization"]["mean"] == pytest.approx(cm["statistics"]["mean"])
     assert m["standardization"]["std"] == pytest.approx(cm["statistics"]["std"])
     assert m["intensity"]["fit"] == "per_volume" and m["intensity"]["rule"]["scheme"] == "percentile"
-    assert m["input"] == {"channels": 1, "patch_size": 32, "axes": "Z", "slices_per_patch": 1}
+    assert m["input"] == {"channels": 1, "patch_size": 32, "axes": "Z"}  # the channel count once
+    # One convention for both manifests: format + format_version, and the same voxel fields.
+    assert (m["format"], m["format_version"], cm["format"], cm["format_version"]) == (
+        "warmstart-encoder", 2, "warmstart-corpus", 2)
+    assert m["voxel_size_um"] == cm["voxel_size_um"]
+    assert set(m["voxel_size_um"]) == {"source_range", "patch_range", "target", "unknown_sources"}
+    # .npy sources carry no modality and the recipe named none: formats are not passed off as modalities.
+    assert m["corpus"]["formats"] == {"npy": 3} and m["corpus"]["modalities"] == []
+    assert m["corpus"]["modality_unrecorded"] == 3
     assert m["corpus"]["sources"] == 3 and len(m["corpus"]["provenance"]) == 3
     assert {p["sha256"] for p in m["corpus"]["provenance"]} == {s["sha256"] for s in cm["sources"]}
     assert m["training"]["steps"] == 2 and m["training"]["finished"] is True
@@ -195,9 +203,25 @@ def test_a_file_with_one_byte_flipped_in_a_tensor_is_refused(r18, tmp_path):
     assert main(["inspect", str(bad), "--verify"]) == 1
 
 
+def test_a_version_1_encoder_file_is_still_read(r18, tmp_path):
+    # The layout written by warmstart 0.1.0 before the manifest conventions were unified.
+    manifest, arrays = read_encoder_file(r18)
+    v1 = {k: v for k, v in manifest.items() if k != "format_version"}
+    v1.update(version=1, input={**manifest["input"], "slices_per_patch": manifest["input"]["channels"]},
+              corpus={**manifest["corpus"], "modalities": ["npy"]},
+              voxel_size_um={k: v for k, v in manifest["voxel_size_um"].items() if k != "target"})
+    del v1["corpus"]["modality_unrecorded"]
+    write_encoder_file(tmp_path / "v1.safetensors", arrays, v1)
+    m = read_manifest(tmp_path / "v1.safetensors")
+    assert m["format_version"] == 2 and "version" not in m and m["input"] == manifest["input"]
+    assert m["corpus"]["modalities"] == [] and m["voxel_size_um"]["target"] is None
+    x = torch.randn(1, 1, 32, 32)
+    _same(_ours(tmp_path / "v1.safetensors", x), _ours(r18, x))
+
+
 def test_unknown_version_missing_and_misshapen_tensors_are_refused(r18, tmp_path):
     manifest, arrays = read_encoder_file(r18)
-    newer = dict(manifest, version=99)
+    newer = dict(manifest, format_version=99)
     write_encoder_file(tmp_path / "v99.safetensors", arrays, newer)
     with pytest.raises(ExportError, match="version 99 is unknown"):
         ws.load_encoder(tmp_path / "v99.safetensors")
@@ -391,7 +415,7 @@ def test_prepare_warns_with_the_numbers_when_data_is_unlike_the_corpus(r18):
         ws.prepare(vol, r18)
     m = dict(read_manifest(r18))
     m["voxel_size_um"] = dict(m["voxel_size_um"], patch_range=[0.8, 1.2])
-    with pytest.warns(DataMismatchWarning, match=r"voxel size 5 um is outside .* 0\.8-1\.2 um"):
+    with pytest.warns(DataMismatchWarning, match=r"voxel size 5 µm is outside .* 0\.8-1\.2 µm"):
         ws.prepare(textured(shape=(4, 64, 64), seed=0), m, voxel_size_um=(5.0, 5.0, 5.0))
 
 
@@ -427,6 +451,8 @@ def test_cli_export_inspect_and_model_card(r18, tmp_path, capsys):
     assert "verified" in capsys.readouterr().out
     md = card.read_text()
     assert "## Intended use" in md and "not for diagnosis" in md and read_manifest(out)["tensors"]["sha256"] in md
+    # Formats are called formats; an unrecorded modality is said to be unrecorded, not filled with formats.
+    assert "file formats: npy: 3" in md and "modalities: not recorded" in md
 
 
 def test_timm_builds_a_model_from_the_manifest_configuration(r18):

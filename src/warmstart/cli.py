@@ -281,7 +281,7 @@ def _caution_if_clinical(path: Any) -> None:
 
 
 def cmd_corpus_show(args: argparse.Namespace) -> int:
-    from .corpus.report import summary_rows, write_report
+    from .corpus.report import SUMMARY_COLUMNS, summary_cells, summary_rows, write_report
     from .corpus.store import open_corpus
 
     store = open_corpus(args.corpus)
@@ -296,11 +296,7 @@ def cmd_corpus_show(args: argparse.Namespace) -> int:
               f"{c['sources_ok']} sources used, {c['sources_failed']} skipped")
         if st["mean"] is not None:
             print(f"normalized values: mean {st['mean']:.4f}, std {st['std']:.4f}")
-        rows = [["#", "source", "format", "shape", "voxel µm", "scheme", "planned", "kept", "low var", "backgr.", "dup"]]
-        for r in summary_rows(m):
-            if r["status"] == "ok":
-                rows.append([str(r["position"]), r["name"], r["format"], "x".join(map(str, r["shape"])), _fmt_vs(r["voxel_size_um"]),
-                             r["scheme"], str(r["planned"]), str(r["kept"]), str(r["low_variance"]), str(r["background"]), str(r["duplicate"])])
+        rows = [list(SUMMARY_COLUMNS)] + [summary_cells(r) for r in summary_rows(m) if r["status"] == "ok"]
         print(_table(rows))
         for r in summary_rows(m):
             if r["status"] != "ok":

@@ -8,13 +8,14 @@ from __future__ import annotations
 
 import math
 import time
+from collections import Counter
 from typing import Any, Sequence
 
 import numpy as np
 
 from .. import __version__
 from .settings import CorpusSettings
-from .store import STORE_VERSION, quantization_note
+from .store import CORPUS_FORMAT, STORE_VERSION, quantization_note, voxel_section
 
 __all__ = ["build_manifest", "combine_stats"]
 
@@ -34,7 +35,7 @@ def combine_stats(parts: Sequence[dict[str, Any]], rng: Sequence[float]) -> dict
             "histogram": {"range": list(rng), "bins": len(counts), "counts": counts}}
 
 
-def _source_entry(r: dict[str, Any]) -> dict[str, Any]:
+def _source_entry(r: dict[str, Any], s: CorpusSettings) -> dict[str, Any]:
     entry = {k: r.get(k) for k in ("position", "name", "path", "format", "status", "reason", "warnings", "seconds")}
     entry["patch_range"] = [r["start"], r["stop"]]
     if r["status"] == "ok":
@@ -44,6 +45,7 @@ def _source_entry(r: dict[str, Any]) -> dict[str, Any]:
             shape=vol["shape"], dtype=vol["dtype"], voxel_size_um=vol["voxel_size_um"], meta=vol["meta"],
             reference=r["reference"], downscale_factors=r["factors"], counts=r["counts"],
             quantization=r["quantization"], parts=r.get("parts", 1),
+            modality=s.read.modality_of(r["name"]) or vol["meta"].get("modality"),
             patch_mean=r["stats"]["sum"] / r["stats"]["n"] if r["stats"]["n"] else None,
         )
     return entry
@@ -55,14 +57,14 @@ def build_manifest(build: dict[str, Any], records: list[dict[str, Any]], s: Corp
     ok = [r for r in records if r["status"] == "ok"]
     stats = combine_stats([r["stats"] for r in ok], s.histogram_range())
     totals = {rule: sum(r["counts"][rule] for r in ok) for rule in _RULES}
-    inplane = [v for r in ok for v in r["volume"]["voxel_size_um"][1:] if v is not None]
-    target = s.sampling.target_voxel_um
     qnote = quantization_note(s.encoding())
     qnote["measured_max_abs_error"] = max((r["quantization"]["max_abs_error"] for r in ok), default=0.0)
     qnote["clipped_values"] = sum(r["quantization"]["clipped"] for r in ok)
     encoding = s.encoding()
-    modalities = sorted({r["volume"]["meta"].get("modality") or r["format"] for r in ok})
+    sources = [_source_entry(r, s) for r in records]
+    used = [e for e in sources if e["status"] == "ok"]
     return {
+        "format": CORPUS_FORMAT,
         "format_version": STORE_VERSION,
         "warmstart_version": __version__,
         "created": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
@@ -73,10 +75,11 @@ def build_manifest(build: dict[str, Any], records: list[dict[str, Any]], s: Corp
                     "chunk_patches": s.store.chunk_patches, "quantization": qnote},
         "statistics": stats,
         "counts": {"sources": len(records), "sources_ok": len(ok), "sources_failed": len(records) - len(ok), **totals},
-        "voxel_size_um": {"source_range": [min(inplane), max(inplane)] if inplane else None,
-                          "patch": target, "unknown_sources": sum(1 for r in ok if r["volume"]["voxel_size_um"][1] is None)},
-        "modalities": modalities,
+        "voxel_size_um": voxel_section(used, s.sampling.target_voxel_um,
+                                       sum(1 for r in ok if r["volume"]["voxel_size_um"][1] is None)),
+        "formats": dict(sorted(Counter(e["format"] for e in used).items())),
+        "modalities": sorted({e["modality"] for e in used if e.get("modality")}),
         "clinical": any(r["volume"]["meta"].get("clinical") for r in ok),
-        "sources": [_source_entry(r) for r in records],
+        "sources": sources,
         "ignored": build.get("ignored", []),
     }

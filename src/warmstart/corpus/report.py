@@ -17,7 +17,11 @@ import numpy as np
 from ..base.atomic import write_json
 from .store import open_corpus
 
-__all__ = ["write_report", "montage", "summary_rows"]
+__all__ = ["write_report", "montage", "summary_rows", "SUMMARY_COLUMNS", "summary_cells"]
+
+# The per-source table, with the same headings in ``corpus show`` and in ``report/summary.md``.
+SUMMARY_COLUMNS = ("#", "source", "format", "modality", "shape (ZYX)", "voxel µm (ZYX)", "scheme", "planned", "kept",
+                   "low variance", "background", "duplicate")
 
 
 def montage(patches: np.ndarray, columns: int = 8, gap: int = 2) -> np.ndarray:
@@ -69,7 +73,7 @@ def summary_rows(manifest: dict[str, Any]) -> list[dict[str, Any]]:
     for e in manifest["sources"]:
         row = {"position": e["position"], "name": e["name"], "format": e["format"], "status": e["status"]}
         if e["status"] == "ok":
-            row.update(shape=e["shape"], dtype=e["dtype"], voxel_size_um=e["voxel_size_um"],
+            row.update(shape=e["shape"], dtype=e["dtype"], voxel_size_um=e["voxel_size_um"], modality=e.get("modality"),
                        scheme=e["reference"]["scheme"], **e["counts"])
         else:
             row["reason"] = e["reason"]
@@ -78,7 +82,14 @@ def summary_rows(manifest: dict[str, Any]) -> list[dict[str, Any]]:
 
 
 def _fmt_voxel(v: list[float | None]) -> str:
-    return " x ".join("?" if x is None else f"{x:.4g}" for x in v)
+    return "x".join("?" if x is None else f"{x:.4g}" for x in v)
+
+
+def summary_cells(r: dict[str, Any]) -> list[str]:
+    """A used source's row of :data:`SUMMARY_COLUMNS` as text."""
+    return [str(r["position"]), r["name"], r["format"], r.get("modality") or "-", "x".join(map(str, r["shape"])),
+            _fmt_voxel(r["voxel_size_um"]), r["scheme"], str(r["planned"]), str(r["kept"]), str(r["low_variance"]),
+            str(r["background"]), str(r["duplicate"])]
 
 
 def write_report(corpus: str | os.PathLike[str], *, patches_per_source: int = 64, seed: int = 0,
@@ -147,15 +158,12 @@ def _markdown(m: dict[str, Any], rows: list[dict[str, Any]]) -> str:
     if m.get("clinical"):
         lines += ["", "> Clinical data: research use only, not for diagnosis. Follow your local regulation and "
                   "the advice of qualified practitioners."]
-    lines += ["", "| # | source | format | shape | voxel (µm, ZYX) | scheme | planned | kept | low var | background | dup | files |",
-              "|---|---|---|---|---|---|---|---|---|---|---|---|"]
+    lines += ["", "| " + " | ".join((*SUMMARY_COLUMNS, "files")) + " |", "|---" * (len(SUMMARY_COLUMNS) + 1) + "|"]
     for r in rows:
         if r["status"] != "ok":
             continue
         links = " ".join(f"[{k}]({v})" for k, v in r["files"].items())
-        lines.append(f"| {r['position']} | {r['name']} | {r['format']} | {'x'.join(map(str, r['shape']))} | "
-                     f"{_fmt_voxel(r['voxel_size_um'])} | {r['scheme']} | {r['planned']} | {r['kept']} | "
-                     f"{r['low_variance']} | {r['background']} | {r['duplicate']} | {links} |")
+        lines.append("| " + " | ".join((*summary_cells(r), links)) + " |")
     bad = [r for r in rows if r["status"] != "ok"]
     if bad:
         lines += ["", "## Skipped sources", ""] + [f"- {r['name']}: {r['reason']}" for r in bad]

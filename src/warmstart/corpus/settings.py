@@ -28,15 +28,41 @@ class ReadSettings:
         Channel of multi-channel files.
     voxel_size_um : (float, float, float), optional
         (Z, Y, X) in µm for every source, overriding file metadata (use for ``.npy`` archives).
+    modality : dict of str to str
+        Imaging modality per source folder, as the user names it (``{"filters" = "micro-CT",
+        "cathodes" = "FIB-SEM"}``): a folder relative to the archive (``""`` for the whole
+        archive; the longest matching folder wins). It overrides what a file says (DICOM's
+        Modality); sources matched by neither have no recorded modality.
     """
 
     rgb: str = "refuse"
     channel: int | None = None
     voxel_size_um: tuple[float, float, float] | None = None
+    modality: dict[str, str] = field(default_factory=dict)
 
     def __post_init__(self) -> None:
         if self.rgb not in ("refuse", "luminance"):
             raise RecipeError(f"read.rgb must be 'refuse' or 'luminance', got {self.rgb!r}")
+        if not isinstance(self.modality, dict) or not all(
+                isinstance(k, str) and isinstance(v, str) and v.strip() for k, v in self.modality.items()):
+            raise RecipeError(f"read.modality must be a table of folder = \"modality\" strings, got {self.modality!r}")
+
+    def modality_of(self, name: str) -> str | None:
+        """The user's modality tag for a source ``name`` (its path relative to the archive), or None.
+
+        Examples
+        --------
+        >>> ReadSettings(modality={"": "micro-CT", "cathodes": "FIB-SEM"}).modality_of("cathodes/c1.tif")
+        'FIB-SEM'
+        >>> ReadSettings(modality={"filters": "micro-CT"}).modality_of("filtersX/a.tif") is None
+        True
+        """
+        best, tag = -1, None
+        for folder, value in self.modality.items():
+            f = folder.strip("/").replace("\\", "/")
+            if (f in ("", ".") or name == f or name.startswith(f + "/")) and len(f) > best:
+                best, tag = len(f), value.strip()
+        return tag
 
 
 @dataclass(frozen=True)

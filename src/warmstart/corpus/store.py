@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import json
 import os
+from collections import Counter
 from pathlib import Path
 from typing import Any, Iterable, Mapping
 
@@ -29,10 +30,63 @@ from ..base.atomic import write_json
 from ..errors import CorpusError
 from .settings import StoreSettings
 
-__all__ = ["CorpusStore", "StoreWriter", "CodeHistogram", "open_corpus", "encode", "decode", "quantization_note", "INDEX_COLUMNS", "STORE_VERSION"]
+__all__ = ["CorpusStore", "StoreWriter", "CodeHistogram", "open_corpus", "encode", "decode", "quantization_note", "INDEX_COLUMNS",
+           "STORE_VERSION", "CORPUS_FORMAT", "upgrade_manifest"]
 
-STORE_VERSION = 1
+# The manifest says what it is the same way as an encoder file's: ``format`` and ``format_version``.
+# Version 2: ``format`` added; ``voxel_size_um`` as in the encoder manifest (``source_range``,
+# ``patch_range``, ``target``, ``unknown_sources``); ``modality`` per source and ``modalities`` /
+# ``formats`` kept apart. Version 1 stores are read and upgraded in memory (upgrade_manifest).
+STORE_VERSION = 2
+CORPUS_FORMAT = "warmstart-corpus"
+_READABLE = (1, 2)
 INDEX_COLUMNS = {"source": "int32", "axis": "int8", "z": "int32", "y": "int32", "x": "int32", "scale": "float32"}
+
+
+def upgrade_manifest(m: dict[str, Any]) -> dict[str, Any]:
+    """A corpus manifest in the current version's layout (version 1 manifests are converted; the
+    file on disk is left as it is).
+
+    Examples
+    --------
+    >>> old = {"format_version": 1, "voxel_size_um": {"source_range": [1.0, 2.0], "patch": None, "unknown_sources": 0},
+    ...        "modalities": ["CT", "tiff"], "sources": [
+    ...     {"status": "ok", "format": "tiff", "meta": {}, "voxel_size_um": [2.0, 2.0, 2.0], "downscale_factors": [1, 2, 2]},
+    ...     {"status": "ok", "format": "dicom", "meta": {"modality": "CT"}, "voxel_size_um": [1.0, 1.0, 1.0],
+    ...      "downscale_factors": [1, 1, 1]}]}
+    >>> new = upgrade_manifest(old)
+    >>> new["format_version"], new["voxel_size_um"]["patch_range"], new["modalities"], new["formats"]
+    (2, [1.0, 4.0], ['CT'], {'dicom': 1, 'tiff': 1})
+    """
+    if m.get("format_version") == STORE_VERSION:
+        return m
+    m = dict(m)
+    sources = [dict(e) for e in m.get("sources", [])]
+    for e in sources:
+        if e.get("status") == "ok":
+            e.setdefault("modality", (e.get("meta") or {}).get("modality"))
+    ok = [e for e in sources if e.get("status") == "ok"]
+    old = m.get("voxel_size_um", {})
+    m.update(format=CORPUS_FORMAT, format_version=STORE_VERSION, sources=sources,
+             voxel_size_um=voxel_section(ok, old.get("patch"), old.get("unknown_sources", 0)),
+             modalities=sorted({e["modality"] for e in ok if e.get("modality")}),
+             formats=dict(sorted(Counter(e["format"] for e in ok).items())))
+    return m
+
+
+def voxel_section(ok_sources: Iterable[Mapping[str, Any]], target: float | None, unknown: int) -> dict[str, Any]:
+    """In-plane voxel sizes (µm) of the sources and of their patches after resampling, as
+    ``source_range`` / ``patch_range`` ([min, max] or None), the resampling ``target`` (µm or
+    None) and the count of sources of unknown voxel size: the same fields in the corpus manifest
+    and in the encoder manifest."""
+    src, patch = [], []
+    for s in ok_sources:
+        for v, f in zip(s["voxel_size_um"][1:], s["downscale_factors"][1:]):
+            if v is not None:
+                src.append(float(v))
+                patch.append(float(v) * float(f))
+    rng = (lambda xs: [min(xs), max(xs)] if xs else None)
+    return {"source_range": rng(src), "patch_range": rng(patch), "target": target, "unknown_sources": int(unknown)}
 
 
 def encode(x: np.ndarray, encoding: Mapping[str, Any]) -> tuple[np.ndarray, dict[str, float]]:
@@ -145,8 +199,11 @@ class CorpusStore:
         if not mpath.exists():
             raise CorpusError(f"{self.path}: not a finished corpus (no manifest.json); was its build interrupted?")
         self.manifest: dict[str, Any] = json.loads(mpath.read_text())
-        if self.manifest.get("format_version") != STORE_VERSION:
-            raise CorpusError(f"{self.path}: store format {self.manifest.get('format_version')!r}, this warmstart reads {STORE_VERSION}")
+        if self.manifest.get("format_version") not in _READABLE or self.manifest.get("format", CORPUS_FORMAT) != CORPUS_FORMAT:
+            raise CorpusError(f"{self.path}: store format {self.manifest.get('format')!r} version "
+                              f"{self.manifest.get('format_version')!r}; this warmstart reads {CORPUS_FORMAT} versions "
+                              f"{', '.join(map(str, _READABLE))}")
+        self.manifest = upgrade_manifest(self.manifest)
         root = zarr.open_group(str(self.path), mode="r")
         self.patches = root["patches"]
         self._index = root["index"]

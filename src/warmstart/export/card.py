@@ -9,6 +9,23 @@ CLINICAL_CAUTION = ("For research use only; not for diagnosis or treatment. Any 
                     "regulation and must be overseen by qualified practitioners.")
 
 
+def _um_range(r: Any) -> str:
+    return "unknown" if not r else f"{r[0]:.4g}-{r[1]:.4g} µm"
+
+
+def _formats(c: Mapping[str, Any], sep: str = " ") -> str:
+    return ", ".join(f"{k}{sep}{n}" for k, n in sorted(c["formats"].items()))
+
+
+def _modalities(c: Mapping[str, Any]) -> str:
+    """Recorded modalities, and how many sources have none (neither the file nor the recipe said)."""
+    mods = ", ".join(c["modalities"])
+    missing = c.get("modality_unrecorded", 0)
+    if not mods:
+        return "not recorded (set corpus.read.modality in the recipe)"
+    return mods + (f" ({missing} source(s) not recorded)" if missing else "")
+
+
 def _fmt(x: Any, digits: int = 4) -> str:
     return "n/a" if x is None else (f"{x:.{digits}g}" if isinstance(x, float) else str(x))
 
@@ -47,11 +64,11 @@ def summary_text(m: Mapping[str, Any]) -> str:
          "parameters: loads into warmstart.UNet and smp.Unet with the same widths and bilinear upsampling"
          if d else "decoder     none (encoder only)"),
         f"input       {m['input']['channels']} channel(s), patches of {m['input']['patch_size']} px, "
-        f"voxel size {('%.4g-%.4g um' % tuple(rng)) if rng else 'unknown'}",
+        f"voxel size {_um_range(rng)}",
         f"intensity   {intensity_line(m)}",
         f"standardize (x - {st['mean']:.5g}) / {st['std']:.5g}",
-        f"corpus      {c['sources']} sources ({', '.join(f'{k} {n}' for k, n in sorted(c['formats'].items()))}), "
-        f"{c['patches']:,} patches; modalities: {', '.join(c['modalities']) or 'n/a'}",
+        f"corpus      {c['sources']} sources, {c['patches']:,} patches; formats: {_formats(c)}; "
+        f"modalities: {_modalities(c)}",
         f"training    {t['method']}, {t['steps']} of {t['planned_steps']} steps"
         f"{'' if t['finished'] else ' (run not finished)'}; final loss {_fmt(t['final_loss'])}, "
         f"embedding spread {_fmt(t['final_spread'], 3)}, kNN {_fmt(t['knn_accuracy'], 3)}, {_fmt(t['seconds'])} s",
@@ -91,9 +108,9 @@ unlabeled images, meant as the warm start of a segmentation network (U-Net encod
 
 ## What it was trained on
 
-- {c['sources']} volumes ({', '.join(f'{k}: {n}' for k, n in sorted(c['formats'].items()))}); modalities: {', '.join(c['modalities']) or 'n/a'}
+- {c['sources']} volumes; file formats: {_formats(c, ': ')}; modalities: {_modalities(c)}
 - {c['patches']:,} patches of {m['input']['patch_size']} px, {m['input']['channels']} channel(s), cut along {m['input']['axes']}
-- Source voxel sizes {('%.4g-%.4g um' % tuple(src)) if src else 'unknown'}; patch voxel sizes {('%.4g-%.4g um' % tuple(rng)) if rng else 'unknown'}
+- Source voxel sizes {_um_range(src)}; patch voxel sizes {_um_range(rng)}
 - Training: {t['method']}, {t['steps']} steps (batch {t['batch_size']}, lr {t['lr']}), final loss {_fmt(t['final_loss'])},
   embedding spread {_fmt(t['final_spread'], 3)}, kNN accuracy {_fmt(t['knn_accuracy'], 3)}, {_fmt(t['seconds'])} s;
   {'finished' if t['finished'] else 'NOT finished: the file holds an intermediate state'}

@@ -1,9 +1,10 @@
 """The manifest of an encoder file: what the encoder is, what it was trained on, and how new
 data must be prepared for it (no torch needed).
 
-Version 1 fields
+Version 2 fields
 ----------------
-``format``, ``version``, ``created``, ``warmstart_version``
+``format`` (``warmstart-encoder``), ``format_version``, ``created``, ``warmstart_version`` (the
+same ``format`` / ``format_version`` convention as the corpus manifest)
 ``encoder``
     EncoderSpec dict, ``first_conv`` (the module whose weight sees the input channels) and
     ``weights`` (``online`` or ``momentum``: which copy of the network the file holds).
@@ -18,15 +19,23 @@ Version 1 fields
 ``corpus_values``
     Percentiles of the corpus's normalized values (before standardization), for mismatch checks.
 ``voxel_size_um``
-    In-plane voxel sizes (micrometres) of the sources and of the patches after resampling.
+    As in the corpus manifest: ``source_range`` and ``patch_range`` (in-plane voxel sizes in
+    micrometres of the sources and of the patches after resampling, [min, max] or null),
+    ``target`` (the resampling target, µm, or null) and ``unknown_sources``.
 ``corpus``
-    Sources, formats, modalities, counts, clinical flag and provenance hashes.
+    Sources, ``formats`` (file formats and their counts), ``modalities`` (imaging modalities as
+    the files or the recipe's ``corpus.read.modality`` name them; sources with none are counted
+    in ``modality_unrecorded``), counts, clinical flag and provenance hashes.
 ``training``
     Method, steps, epochs, final loss, embedding spread, kNN accuracy, seconds, library versions.
 ``timm``
     A timm-style pretrained configuration (ResNet-18/34/50 only), or null.
 ``tensors``
     ``count``, ``parameters`` and ``sha256`` of the tensor data (see :func:`~.file.tensor_digest`).
+
+Version 1 files (``version`` instead of ``format_version``, ``input.slices_per_patch`` beside
+``input.channels``, file formats listed among the modalities) are read and converted in memory by
+:func:`check_manifest`.
 """
 from __future__ import annotations
 
@@ -44,7 +53,8 @@ __all__ = ["FORMAT", "MANIFEST_VERSION", "build_manifest", "check_manifest", "in
            "histogram_percentiles", "timm_config"]
 
 FORMAT = "warmstart-encoder"
-MANIFEST_VERSION = 1
+MANIFEST_VERSION = 2
+_READABLE = (1, 2)
 _REQUIRED = ("encoder", "input", "intensity", "standardization", "corpus_values", "voxel_size_um", "corpus",
              "training", "tensors")
 _TIMM_ARCHS = {"resnet18", "resnet34", "resnet50"}
@@ -83,21 +93,6 @@ def intensity_section(corpus: Mapping[str, Any]) -> dict[str, Any]:
     return out
 
 
-def _voxel_section(corpus: Mapping[str, Any]) -> dict[str, Any]:
-    src, patch = [], []
-    for s in corpus["sources"]:
-        if s.get("status") != "ok":
-            continue
-        for v, f in zip(s["voxel_size_um"][1:], s["downscale_factors"][1:]):
-            if v is not None:
-                src.append(float(v))
-                patch.append(float(v) * float(f))
-    rng = (lambda xs: [min(xs), max(xs)] if xs else None)
-    return {"source_range": rng(src), "patch_range": rng(patch),
-            "target": corpus["settings"]["sampling"].get("target_voxel_um"),
-            "unknown_sources": corpus.get("voxel_size_um", {}).get("unknown_sources", 0)}
-
-
 def _corpus_section(corpus: Mapping[str, Any], path: str | None) -> dict[str, Any]:
     ok = [s for s in corpus["sources"] if s.get("status") == "ok"]
     return {
@@ -105,8 +100,9 @@ def _corpus_section(corpus: Mapping[str, Any], path: str | None) -> dict[str, An
         "created": corpus.get("created"),
         "sources": len(ok),
         "sources_failed": corpus["counts"]["sources_failed"],
-        "formats": dict(Counter(s["format"] for s in ok)),
-        "modalities": corpus.get("modalities", []),
+        "formats": dict(sorted(Counter(s["format"] for s in ok).items())),
+        "modalities": sorted({s["modality"] for s in ok if s.get("modality")}),
+        "modality_unrecorded": sum(1 for s in ok if not s.get("modality")),
         "clinical": bool(corpus.get("clinical")),
         "patches": corpus["patches"]["count"],
         "counts": {k: corpus["counts"][k] for k in ("planned", "kept") if k in corpus["counts"]},
@@ -158,17 +154,16 @@ def build_manifest(*, spec: Mapping[str, Any], first_conv: str, weights: str, co
     hist = corpus["statistics"]["histogram"]
     return {
         "format": FORMAT,
-        "version": MANIFEST_VERSION,
+        "format_version": MANIFEST_VERSION,
         "created": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
         "warmstart_version": __version__,
         "encoder": {"spec": dict(spec), "first_conv": first_conv, "weights": weights},
-        "input": {"channels": channels, "patch_size": patch, "axes": corpus["settings"]["sampling"]["axes"],
-                  "slices_per_patch": channels},
+        "input": {"channels": channels, "patch_size": patch, "axes": corpus["settings"]["sampling"]["axes"]},
         "intensity": intensity_section(corpus),
         "standardization": {"mean": mean, "std": std},
         "corpus_values": {"percentiles": histogram_percentiles(hist), "mean": corpus["statistics"]["mean"],
                           "std": corpus["statistics"]["std"]},
-        "voxel_size_um": _voxel_section(corpus),
+        "voxel_size_um": dict(corpus["voxel_size_um"]),
         "corpus": _corpus_section(corpus, corpus_path),
         "training": dict(training),
         "timm": timm_config(spec["name"], channels, patch, mean, std, first_conv),
@@ -181,10 +176,29 @@ def check_manifest(d: Any, path: str | os.PathLike[str]) -> dict[str, Any]:
     """Refuse a manifest of another format, an unknown version or with missing fields."""
     if not isinstance(d, dict) or d.get("format") != FORMAT:
         raise ExportError(f"{path}: not a warmstart encoder manifest (format {d.get('format') if isinstance(d, dict) else None!r})")
-    if d.get("version") != MANIFEST_VERSION:
-        raise ExportError(f"{path}: encoder manifest version {d.get('version')!r} is unknown; this warmstart "
-                          f"({__version__}) reads version {MANIFEST_VERSION}; upgrade warmstart or re-export the encoder")
+    version = d.get("format_version", d.get("version"))
+    if version not in _READABLE:
+        raise ExportError(f"{path}: encoder manifest version {version!r} is unknown; this warmstart "
+                          f"({__version__}) reads versions {', '.join(map(str, _READABLE))}; upgrade warmstart or "
+                          "re-export the encoder")
     missing = [k for k in _REQUIRED if k not in d]
     if missing:
         raise ExportError(f"{path}: the encoder manifest lacks {', '.join(missing)}")
+    return _upgraded(d)
+
+
+def _upgraded(d: dict[str, Any]) -> dict[str, Any]:
+    """A version 1 manifest in the version 2 layout (the file itself is not changed)."""
+    if "format_version" in d:
+        return d
+    d = {**d, "format_version": MANIFEST_VERSION}
+    d.pop("version", None)
+    d["input"] = {k: v for k, v in d["input"].items() if k != "slices_per_patch"}
+    corpus = dict(d["corpus"])
+    formats = set(corpus.get("formats", {}))
+    corpus["modalities"] = [x for x in corpus.get("modalities", []) if x not in formats]  # v1 listed formats too
+    d["corpus"] = corpus
+    vox = dict(d["voxel_size_um"])
+    vox.setdefault("target", None)
+    d["voxel_size_um"] = vox
     return d

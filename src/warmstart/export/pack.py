@@ -11,6 +11,7 @@ from typing import Any
 
 import numpy as np
 
+from ..corpus.store import upgrade_manifest
 from ..errors import ExportError
 from ..run_folder import CHECKPOINTS, CORPUS_MANIFEST, HISTORY, RECIPE, SUMMARY, read_networks
 from .file import write_encoder_file
@@ -35,9 +36,10 @@ def _corpus_manifest(run: Path) -> tuple[dict[str, Any], str | None]:
     recipe = _read_json(run / RECIPE, "the run's resolved recipe; is this a pretraining run folder?")
     saved = run / CORPUS_MANIFEST
     if saved.exists():
-        return _read_json(saved, "corpus manifest"), recipe.get("corpus")
+        return upgrade_manifest(_read_json(saved, "corpus manifest")), recipe.get("corpus")
     corpus = Path(recipe.get("corpus", ""))
-    return _read_json(corpus / "manifest.json", f"manifest of the corpus {corpus} the run was trained on"), str(corpus)
+    found = _read_json(corpus / "manifest.json", f"manifest of the corpus {corpus} the run was trained on")
+    return upgrade_manifest(found), str(corpus)
 
 
 def _training_section(run: Path, ckpt: dict[str, Any], hp: dict[str, Any]) -> dict[str, Any]:

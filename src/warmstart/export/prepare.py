@@ -68,7 +68,7 @@ def check_like_corpus(normalized: np.ndarray, file: str | os.PathLike[str] | Map
             v = float(np.mean(known))
             lo, hi = rng
             if v < lo / VOXEL_TOLERANCE or v > hi * VOXEL_TOLERANCE:
-                out.append(f"{name}: voxel size {v:.4g} um is outside the corpus patches' {lo:.4g}-{hi:.4g} um by more "
+                out.append(f"{name}: voxel size {v:.4g} µm is outside the corpus patches' {lo:.4g}-{hi:.4g} µm by more "
                            f"than a factor {VOXEL_TOLERANCE:g}: resample it (features are scale-dependent)")
     return out
 
