@@ -72,3 +72,14 @@ def test_installed_wheel_ships_the_recipes(tmp_path):
                          env=env, cwd=tmp_path, capture_output=True, text=True)
     assert out.returncode == 0, out.stderr
     assert [r["status"] for r in json.loads(out.stdout)["sources"]] == ["ok"]
+
+
+@pytest.mark.parametrize("doc", ["README.md", "DEVELOPERS.md"])
+def test_docs_point_nowhere_outside_the_repository(doc):
+    import re
+
+    text = (ROOT / doc).read_text()
+    assert not re.search(r"https?://", text), "links outside the repository"
+    assert "../" not in text, "paths outside the repository"
+    for target in re.findall(r"\]\(([^)#]+)\)", text):  # relative Markdown links must resolve
+        assert (ROOT / target).exists(), target
