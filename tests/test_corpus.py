@@ -213,6 +213,10 @@ def test_resume_cuts_unjournalled_patches(small_archive, tmp_path):
     for j in sorted((out / "journal").glob("*.json"))[1:]:
         j.unlink()  # as if the build died while appending source 1
     (out / "manifest.json").unlink()
+    # Begun by warmstart 0.1.0, whose settings had no read.modality: still resumes.
+    build = json.loads((out / "build.json").read_text())
+    del build["settings"]["read"]["modality"]
+    (out / "build.json").write_text(json.dumps(build))
     res = build_corpus(small_archive, out, SMALL, report=False, progress=False)
     assert res.resumed == 1 and first < res.n_patches
     _same_store(ref.path, out)

@@ -256,6 +256,8 @@ class StoreWriter:
         build_file = self.path / "build.json"
         if build_file.exists():
             old = json.loads(build_file.read_text())
+            # Settings added since an interrupted build began are compared at their defaults.
+            old.get("settings", {}).get("read", {}).setdefault("modality", {})
             for key in ("settings", "sources", "shard", "archive_names"):
                 if old.get(key) != build.get(key):
                     raise CorpusError(

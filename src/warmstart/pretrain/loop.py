@@ -1,8 +1,8 @@
 """The pretraining loop, on PyTorch Lightning: CPU, one GPU with mixed precision, or DDP.
 
-The run folder is described in :mod:`warmstart.run_folder`. The two views of step ``s`` on rank ``r`` come from a generator
-seeded with (seed, s, r) and the data position is part of the step count, so a resumed run sees
-exactly the batches and views the uninterrupted run would have seen.
+The run folder is described in :mod:`warmstart.run_folder`. The two views of step ``s`` on rank
+``r`` come from a generator seeded with (seed, s, r) and the data position is part of the step
+count, so a resumed run sees exactly the batches and views the uninterrupted run would have seen.
 """
 from __future__ import annotations
 
