@@ -34,3 +34,13 @@ def test_plain_progress_waits_for_its_interval_and_can_be_silenced():
 def test_progress_bar_is_plain_when_stderr_is_not_a_terminal():
     # pytest captures stderr, so it is not a terminal here
     assert isinstance(progress_bar(total=3, desc="x", disable=True), PlainProgress)
+
+
+def test_plain_progress_does_not_repeat_its_last_line():
+    out = io.StringIO()
+    bar = PlainProgress(total=2, desc="bench runs", unit="run", interval=0.0, stream=out)
+    bar.update()
+    bar.update()
+    bar.close()  # the last update already wrote 2/2
+    assert [line.split(",")[0] for line in out.getvalue().splitlines()] == ["bench runs: 1/2 run (50 %)",
+                                                                          "bench runs: 2/2 run (100 %)"]

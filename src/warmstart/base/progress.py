@@ -55,6 +55,7 @@ class PlainProgress:
         self.postfix = ""
         self._t0 = time.monotonic()
         self._last = self._t0
+        self._written: int | None = None  # the count of the last line written
         self._closed = False
 
     def line(self) -> str:
@@ -66,6 +67,7 @@ class PlainProgress:
 
     def _write(self) -> None:
         if not self.disable:
+            self._written = self.n
             print(self.line(), file=self.stream or sys.stderr, flush=True)
 
     def update(self, n: int = 1) -> None:
@@ -82,9 +84,11 @@ class PlainProgress:
         self.postfix = ", ".join(f"{k}={v}" for k, v in values.items())
 
     def close(self) -> None:
+        """Write the final count (unless the last line already showed it)."""
         if not self._closed:
             self._closed = True
-            self._write()
+            if self._written != self.n:
+                self._write()
 
     def __iter__(self) -> Iterator[Any]:
         if self.iterable is None:

@@ -214,7 +214,7 @@ def run_bench(labels: str | os.PathLike[str], encoders: Sequence[str | os.PathLi
         rec = {"contender": c.id, "size": n, "seed": seed, **r}
         write_json(path, rec)
         runs.append(rec)
-        bar.set_postfix_str(f"{c.id} n={n} seed={seed} Dice {r['test_dice']:.3f}")
+        bar.set_postfix_str(f"{c.id}, {n} tile(s), replicate {seed}: test Dice {r['test_dice']:.3f}")
     for c in contenders:  # mismatch notes also when every run was reused
         if c.file and c.id not in prepared:
             _prepared(c, pairs)

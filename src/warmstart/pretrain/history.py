@@ -45,11 +45,15 @@ class HistoryLogger(Logger):
         Keep the rows already in the file (those of steps run again are replaced).
     flush_every : int
         Steps between writes to disk.
+    save_dir : path, optional
+        What ``trainer.log_dir`` reports (the folder of the training library's own files).
     """
 
-    def __init__(self, path: str | os.PathLike[str], resume: bool = False, flush_every: int = 10) -> None:
+    def __init__(self, path: str | os.PathLike[str], resume: bool = False, flush_every: int = 10,
+                 save_dir: str | os.PathLike[str] | None = None) -> None:
         super().__init__()
         self.path = Path(path)
+        self._save_dir = None if save_dir is None else str(save_dir)
         self.flush_every = int(flush_every)
         self._kept = read_history(self.path) if resume else []
         self._pending: list[dict[str, float]] = []
@@ -62,6 +66,10 @@ class HistoryLogger(Logger):
     @property
     def version(self) -> str:
         return ""
+
+    @property
+    def save_dir(self) -> str | None:
+        return self._save_dir
 
     @rank_zero_only
     def log_hyperparams(self, params: Any, *args: Any, **kwargs: Any) -> None:

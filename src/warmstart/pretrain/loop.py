@@ -270,7 +270,9 @@ def pretrain(corpus: str | os.PathLike[str], out: str | os.PathLike[str], settin
         warnings.filterwarnings("ignore", message=".*isinstance\\(treespec, LeafSpec\\).*")  # Lightning vs new torch
         trainer.fit(module, loader, ckpt_path=str(last) if resume else None)
     seconds = time.perf_counter() - t0
-    trainer.save_checkpoint(last)  # the end state, whatever the step count (all ranks call, rank 0 writes)
+    # The end state, whatever the step count (all ranks call, rank 0 writes); the full state, so the
+    # run can be resumed with more steps.
+    trainer.save_checkpoint(last, weights_only=False)
     history = read_history(out / HISTORY)
     summary = {
         "warmstart_version": __version__, "torch_version": torch.__version__, "lightning_version": pl.__version__,
@@ -296,7 +298,7 @@ def _standardization(manifest: dict[str, Any], s: PretrainSettings) -> tuple[flo
 
 def _loggers(out: Path, resume: bool) -> list[Any]:
     """history.csv always; TensorBoard's files under lightning/tensorboard when it is installed."""
-    loggers: list[Any] = [HistoryLogger(out / HISTORY, resume=resume)]
+    loggers: list[Any] = [HistoryLogger(out / HISTORY, resume=resume, save_dir=out / LIBRARY_LOGS)]
     try:
         import tensorboard  # noqa: F401
     except ImportError:
