@@ -34,13 +34,14 @@ def _add_recipe_options(p: argparse.ArgumentParser, names: str = "smoke, cpu-low
 def _deprecated_alias(group: Any, old: str, new: str, **kwargs: Any) -> None:
     """Accept ``old`` as a hidden, deprecated spelling of option ``new`` (for one release; the README's
     changelog lists them), with a note on stderr each time it is used."""
-    base = argparse._AppendAction if kwargs.get("action") == "append" else argparse._StoreAction
-    kwargs.pop("action", None)
+    append = kwargs.pop("action", None) == "append"
 
-    class _Warned(base):  # type: ignore[misc, valid-type]
+    class _Warned(argparse.Action):
         def __call__(self, parser: Any, namespace: Any, values: Any, option_string: str | None = None) -> None:
             print(f"warmstart: note: {old} is now {new}; the old name works until the next release", file=sys.stderr)
-            super().__call__(parser, namespace, values, option_string)
+            if append:
+                values = [*(getattr(namespace, self.dest, None) or []), values]
+            setattr(namespace, self.dest, values)
 
     group.add_argument(old, action=_Warned, help=argparse.SUPPRESS, **kwargs)
 
