@@ -145,7 +145,10 @@ def build_parser() -> argparse.ArgumentParser:
     ins.add_argument("file", metavar="FILE")
     ins.add_argument("--json", action="store_true", help="print the whole manifest as JSON")
     ins.add_argument("--card", metavar="MD", help="write a Markdown model card to MD")
-    ins.add_argument("--verify", action="store_true", help="also check the tensors against the manifest's sha256")
+    ins.add_argument("--verify", action="store_true", help="also check the tensors against the manifest's sha256 "
+                     "(the manifest itself is always checked)")
+    ins.add_argument("--expect-sha256", metavar="HEX",
+                     help="refuse the file unless its fingerprint is HEX (the value its publisher gives; implies --verify)")
 
     bench = sub.add_parser("bench", help="few-shot segmentation: random init vs warm starts on labelled data",
                            description="Fine-tune the reference U-Net from random weights and from each encoder file "
@@ -379,15 +382,24 @@ def cmd_inspect(args: argparse.Namespace) -> int:
     from .export.card import model_card, summary_text
     from .export.file import read_encoder_file, read_manifest
 
-    m = read_encoder_file(args.file)[0] if args.verify else read_manifest(args.file)
+    verify = args.verify or bool(args.expect_sha256)
+    m = read_encoder_file(args.file)[0] if verify else read_manifest(args.file)
+    if args.expect_sha256:
+        got = (m.get("digest") or {}).get("sha256")
+        if got != args.expect_sha256.strip().lower():
+            from .errors import ExportError
+
+            raise ExportError(f"{args.file}: fingerprint {got} is not the expected {args.expect_sha256}: this is not the "
+                              "file its publisher released (or it was changed since)")
     if args.card:
         Path(args.card).write_text(model_card(m, Path(args.file).stem))
     if args.json:
         _print_json(m)
     else:
         print(summary_text(m))
-        if args.verify:
-            print("tensors     verified against the manifest's sha256")
+        if verify:
+            print("verified    manifest and tensors match their sha256" +
+                  (" and the expected fingerprint" if args.expect_sha256 else ""))
         if args.card:
             print(f"model card: {args.card}")
     if m["corpus"].get("clinical"):

@@ -50,11 +50,11 @@ def _contenders(encoders: Sequence[str | os.PathLike[str]], s: BenchSettings, pa
     """Random init per architecture, then each file (its own normalization; leakage: the labelled
     volumes whose sha256 is among the file's corpus sources)."""
     from ..export.card import intensity_line
-    from ..export.file import read_manifest
+    from ..export.file import read_encoder_file
 
     files = []
-    for f in encoders:
-        m = read_manifest(f)
+    for f in encoders:  # every file checked whole (manifest and tensors) before any training starts
+        m = read_encoder_file(f)[0]
         files.append((str(f), m))
     specs: dict[str, dict[str, Any]] = {}
     for _, m in files:

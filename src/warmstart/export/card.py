@@ -73,6 +73,7 @@ def summary_text(m: Mapping[str, Any]) -> str:
         f"{'' if t['finished'] else ' (run not finished)'}; final loss {_fmt(t['final_loss'])}, "
         f"embedding spread {_fmt(t['final_spread'], 3)}, kNN {_fmt(t['knn_accuracy'], 3)}, {_fmt(t['seconds'])} s",
         f"tensors     {m['tensors']['count']}, sha256 {m['tensors']['sha256'][:16]}...",
+        f"fingerprint {(m.get('digest') or {}).get('sha256', 'none (version 1 file: manifest not covered)')}",
         f"written by  warmstart {m['warmstart_version']} on {m['created']}",
     ]
     if c.get("clinical"):
@@ -104,7 +105,8 @@ unlabeled images, meant as the warm start of a segmentation network (U-Net encod
 
 - Architecture: `{e['spec']['name']}` with {e['spec']['params']}; {m['tensors']['parameters']:,} parameters
   ({e['weights']} weights); feature maps (channels@stride): {', '.join(f"{s['channels']}@{s['stride']}" for s in e['spec']['stages'])}
-- File integrity: sha256 of the tensors `{m['tensors']['sha256']}`
+- File integrity: sha256 of the tensors `{m['tensors']['sha256']}`; fingerprint of the whole file (manifest and
+  tensors; compare it with the one the file's publisher gives) `{(m.get('digest') or {}).get('sha256', 'none')}`
 
 ## What it was trained on
 

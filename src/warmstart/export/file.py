@@ -1,9 +1,17 @@
 """The encoder file: tensors in safetensors, the manifest as JSON in the safetensors metadata.
 
 safetensors holds only raw tensors and a string-to-string metadata table, so loading a shared
-file can never run code (unlike a pickle). The manifest sits under one metadata key, and the
-manifest records a sha256 of the tensors so that a damaged or altered file is refused. Reading
-needs numpy only: ``warmstart inspect`` and :func:`warmstart.prepare` never import torch.
+file can never run code (unlike a pickle). The manifest sits under one metadata key.
+
+Integrity: the manifest's ``tensors.sha256`` covers the tensors, and its ``digest`` covers the
+manifest itself: ``digest.sections`` holds the sha256 of each top-level field (canonical JSON),
+``digest.manifest_sha256`` that of the whole manifest but ``digest``, and ``digest.sha256``
+combines the manifest's and the tensors' hashes into the one fingerprint of the file's content
+that ``warmstart inspect`` prints. Every reader recomputes the manifest's hashes (cheap: the
+header only) and refuses a file whose manifest was edited, naming the fields that differ; loading
+the tensors also checks theirs. The hashes prove the file is the one that was exported, unchanged;
+they do not prove who exported it: compare ``digest.sha256`` with the value its publisher gives.
+Reading needs numpy only: ``warmstart inspect`` and :func:`warmstart.prepare` never import torch.
 """
 from __future__ import annotations
 
@@ -17,7 +25,7 @@ import numpy as np
 
 from ..errors import ExportError
 
-__all__ = ["METADATA_KEY", "tensor_digest", "write_encoder_file", "read_encoder_file", "read_manifest"]
+__all__ = ["METADATA_KEY", "tensor_digest", "manifest_digest", "write_encoder_file", "read_encoder_file", "read_manifest"]
 
 METADATA_KEY = "warmstart.manifest"
 
@@ -47,11 +55,60 @@ def tensor_digest(arrays: Mapping[str, np.ndarray]) -> str:
     return h.hexdigest()
 
 
+def _canonical(value: Any) -> bytes:
+    """The one byte string of a JSON value: sorted keys, no spaces, UTF-8 (floats as Python's repr,
+    which JSON reads back exactly)."""
+    return json.dumps(value, sort_keys=True, separators=(",", ":"), ensure_ascii=False, allow_nan=False).encode()
+
+
+def manifest_digest(manifest: Mapping[str, Any]) -> dict[str, Any]:
+    """The ``digest`` of a manifest (see the module docstring); ``digest`` itself is left out.
+
+    Examples
+    --------
+    >>> d = manifest_digest({"a": 1, "tensors": {"sha256": "00"}})
+    >>> d == manifest_digest({"tensors": {"sha256": "00"}, "a": 1})  # key order does not matter
+    True
+    >>> d["sections"]["a"] == manifest_digest({"a": 2, "tensors": {"sha256": "00"}})["sections"]["a"]
+    False
+    """
+    body = {k: v for k, v in manifest.items() if k != "digest"}
+    sections = {k: hashlib.sha256(_canonical(v)).hexdigest() for k, v in sorted(body.items())}
+    whole = hashlib.sha256(_canonical(body)).hexdigest()
+    tensors = str(body.get("tensors", {}).get("sha256", ""))
+    return {"sections": sections, "manifest_sha256": whole,
+            "sha256": hashlib.sha256(f"{whole}:{tensors}".encode()).hexdigest()}
+
+
+def _check_digest(d: Mapping[str, Any], path: str | os.PathLike[str]) -> None:
+    """Refuse a manifest whose recorded digest does not match it (naming the fields that differ);
+    version 1 files, written before the digest existed, pass with a warning."""
+    recorded = d.get("digest")
+    if recorded is None:
+        if d.get("format_version") is None and d.get("version") == 1:
+            import warnings
+
+            warnings.warn(f"{path}: a version 1 encoder file: its tensors are checked, its manifest is not "
+                          "(re-export it to cover both)", UserWarning, stacklevel=3)
+            return
+        raise ExportError(f"{path}: the manifest carries no digest; it was not written by warmstart export or was "
+                          "altered: refusing it")
+    want = manifest_digest(d)
+    if not isinstance(recorded, Mapping) or recorded.get("manifest_sha256") != want["manifest_sha256"]:
+        had = recorded.get("sections", {}) if isinstance(recorded, Mapping) else {}
+        changed = sorted(k for k in set(want["sections"]) | set(had) if want["sections"].get(k) != had.get(k))
+        raise ExportError(f"{path}: the manifest was altered after export (fields that differ from their recorded "
+                          f"sha256: {', '.join(changed) or 'the digest itself'}); refusing it: its intensity rule and "
+                          "standardization could no longer be trusted")
+    if recorded.get("sha256") != want["sha256"]:
+        raise ExportError(f"{path}: the file's recorded fingerprint (digest.sha256) does not match its manifest; refusing it")
+
+
 def write_encoder_file(path: str | os.PathLike[str], arrays: Mapping[str, np.ndarray], manifest: Mapping[str, Any]) -> Path:
     """Write tensors and manifest atomically (a temporary file renamed into place), so an
     interrupted export never leaves a half-written file under the final name.
 
-    The manifest's ``tensors`` entry (count and sha256) is filled in here.
+    The manifest's ``tensors`` entry (count and sha256) and its ``digest`` are filled in here.
     """
     from safetensors.numpy import save_file
 
@@ -60,9 +117,11 @@ def write_encoder_file(path: str | os.PathLike[str], arrays: Mapping[str, np.nda
     full = dict(manifest)
     full["tensors"] = {"count": len(arrays), "sha256": tensor_digest(arrays),
                        "parameters": int(sum(a.size for k, a in arrays.items() if not k.endswith("num_batches_tracked")))}
+    full.pop("digest", None)
+    full["digest"] = manifest_digest(full)
     path.parent.mkdir(parents=True, exist_ok=True)
     tmp = path.with_name(f".{path.name}.partial")
-    save_file(arrays, str(tmp), metadata={METADATA_KEY: json.dumps(full)})
+    save_file(arrays, str(tmp), metadata={METADATA_KEY: json.dumps(full, allow_nan=False)})
     os.replace(tmp, path)
     return path
 
@@ -72,7 +131,7 @@ def read_manifest(path: str | os.PathLike[str]) -> dict[str, Any]:
     from .manifest import check_manifest
 
     meta = _open(path, lambda f: f.metadata())
-    return check_manifest(_parse(meta, path), path)
+    return check_manifest(_checked(_parse(meta, path), path), path)
 
 
 def read_encoder_file(path: str | os.PathLike[str], verify: bool = True) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
@@ -96,7 +155,7 @@ def read_encoder_file(path: str | os.PathLike[str], verify: bool = True) -> tupl
         return f.metadata(), {k: f.get_tensor(k) for k in f.keys()}
 
     meta, arrays = _open(path, both)
-    manifest = check_manifest(_parse(meta, path), path)
+    manifest = check_manifest(_checked(_parse(meta, path), path), path)
     if verify:
         want = manifest["tensors"]["sha256"]
         got = tensor_digest(arrays)
@@ -119,6 +178,12 @@ def _open(path: str | os.PathLike[str], fn: Any) -> Any:
         raise
     except Exception as e:  # safetensors raises its own error types for damaged headers
         raise ExportError(f"{path}: not a readable safetensors encoder file ({e})") from e
+
+
+def _checked(d: dict[str, Any], path: str | os.PathLike[str]) -> dict[str, Any]:
+    if isinstance(d, dict) and d.get("format") == "warmstart-encoder":  # other formats: check_manifest says so
+        _check_digest(d, path)
+    return d
 
 
 def _parse(meta: Mapping[str, str] | None, path: str | os.PathLike[str]) -> dict[str, Any]:
