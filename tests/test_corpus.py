@@ -340,3 +340,49 @@ def test_corpus_show_and_summary_md_use_the_same_headings(small_archive, tmp_pat
     md = (res.path / "report" / "summary.md").read_text()
     assert "| " + " | ".join(SUMMARY_COLUMNS) + " | files |" in md
     assert "µm" in header and " um" not in md
+
+
+# --- damage to a finished store -------------------------------------------------------------
+def test_a_missing_chunk_file_is_refused_by_name_and_patch_range(small_archive, tmp_path, capsys):
+    from warmstart.cli import main
+
+    s = CorpusSettings(sampling=SMALL.sampling, store=StoreSettings(chunk_patches=32))
+    res = build_corpus(small_archive, tmp_path / "c.zarr", s, report=False, progress=False)
+    assert open_corpus(res.path).verify() == []
+    chunk = res.path / "patches" / "c" / "1" / "0" / "0" / "0"
+    assert chunk.is_file()
+    chunk.unlink()  # zarr alone would read these 32 patches as the fill value
+    with pytest.raises(CorpusError, match=r"chunk file patches/c/1/0/0/0 \(patches 32 to 63\) is missing"):
+        open_corpus(res.path)
+    assert main(["-q", "corpus", "show", str(res.path), "--no-report"]) == 1
+    assert "is missing" in capsys.readouterr().err
+    pytest.importorskip("torch")
+    assert main(["-q", "pretrain", str(res.path), "-o", str(tmp_path / "run")]) == 1  # refused before training
+    assert "patches 32 to 63" in capsys.readouterr().err and not (tmp_path / "run" / "checkpoints").exists()
+
+
+def test_verify_finds_altered_patches_by_source(small_archive, tmp_path, capsys):
+    import zarr
+
+    from warmstart.cli import main
+
+    res = build_corpus(small_archive, tmp_path / "c.zarr", SMALL, report=False, progress=False)
+    m = open_corpus(res.path).manifest
+    victim = next(e for e in m["sources"] if e["status"] == "ok" and e["patch_range"][1] > e["patch_range"][0])
+    arr = zarr.open_array(str(res.path / "patches"), mode="r+")
+    a = victim["patch_range"][0]
+    arr[a] = arr[a] + 1  # a silent bit-level change inside one source's range
+    problems = open_corpus(res.path).verify()
+    assert problems == [f"{victim['name']}: patches {a} to {victim['patch_range'][1] - 1} do not match their "
+                        "recorded sha256 (damaged)"]
+    assert main(["-q", "corpus", "show", str(res.path), "--verify", "--no-report"]) == 1
+    assert victim["name"] in capsys.readouterr().err
+
+
+def test_checksums_survive_shards_and_merge(small_archive, tmp_path):
+    a = build_corpus(small_archive, tmp_path / "a.zarr", SMALL, shard="0/2", report=False, progress=False)
+    b = build_corpus(small_archive, tmp_path / "b.zarr", SMALL, shard="1/2", report=False, progress=False)
+    merged = merge_corpora([a.path, b.path], tmp_path / "m.zarr", report=False, progress=False)
+    single = build_corpus(small_archive, tmp_path / "s.zarr", SMALL, report=False, progress=False)
+    sums = lambda p: {e["name"]: e["patches_sha256"] for e in open_corpus(p).manifest["sources"]}  # noqa: E731
+    assert sums(merged) == sums(single.path) and open_corpus(merged).verify() == []

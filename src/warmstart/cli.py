@@ -99,6 +99,8 @@ def build_parser() -> argparse.ArgumentParser:
     show = csub.add_parser("show", help="summarize a corpus and (re)write its report/")
     show.add_argument("corpus", metavar="CORPUS")
     show.add_argument("--no-report", action="store_true", help="only print, do not write report/")
+    show.add_argument("--verify", action="store_true",
+                      help="recompute every source's patch checksums (reads the whole store; chunk files are always checked)")
     show.add_argument("--json", action="store_true")
 
     pre = sub.add_parser("pretrain", help="pretrain an encoder on a corpus (self-supervised)",
@@ -290,10 +292,17 @@ def cmd_corpus_show(args: argparse.Namespace) -> int:
 
     store = open_corpus(args.corpus)
     m = store.manifest
+    problems = store.verify() if args.verify else []
+    damaged = [p for p in problems if p.endswith("(damaged)")]
+    if damaged:
+        for line in problems:
+            print(f"warmstart: error: {store.path}: {line}", file=sys.stderr)
+        return EXIT_ERROR
     report = None if args.no_report else write_report(store.path, progress=not args.quiet)
     if args.json:
         _print_json({"patches": m["patches"], "counts": m["counts"], "statistics": {k: v for k, v in m["statistics"].items() if k != "histogram"},
-                     "sources": summary_rows(m), "report": None if report is None else str(report)})
+                     "sources": summary_rows(m), "report": None if report is None else str(report),
+                     **({"verify": problems} if args.verify else {})})
     else:
         st, c = m["statistics"], m["counts"]
         print(f"{store.path}: {m['patches']['count']} patches {m['patches']['shape']} ({m['patches']['encoding']['dtype']}), "
@@ -307,6 +316,9 @@ def cmd_corpus_show(args: argparse.Namespace) -> int:
                 print(f"skipped {r['name']}: {r['reason']}")
         if report is not None:
             print(f"report: {report / 'summary.md'}")
+        if args.verify:
+            print("\n".join(f"note: {p}" for p in problems) if problems else
+                  f"verified: the patches of all {c['sources_ok']} sources match their recorded sha256")
     _caution_if_clinical(store.path)
     return 0
 

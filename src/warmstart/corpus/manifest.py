@@ -38,6 +38,7 @@ def combine_stats(parts: Sequence[dict[str, Any]], rng: Sequence[float]) -> dict
 def _source_entry(r: dict[str, Any], s: CorpusSettings) -> dict[str, Any]:
     entry = {k: r.get(k) for k in ("position", "name", "path", "format", "status", "reason", "warnings", "seconds")}
     entry["patch_range"] = [r["start"], r["stop"]]
+    entry["patches_sha256"] = r.get("patches_sha256")
     if r["status"] == "ok":
         vol = r["volume"]
         entry.update(

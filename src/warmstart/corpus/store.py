@@ -18,6 +18,7 @@ with the previous source is never half-written.
 """
 from __future__ import annotations
 
+import hashlib
 import json
 import os
 from collections import Counter
@@ -210,6 +211,57 @@ class CorpusStore:
         n = self.manifest["patches"]["count"]
         if self.patches.shape[0] != n:
             raise CorpusError(f"{self.path}: manifest lists {n} patches, the array holds {self.patches.shape[0]}")
+        self._check_chunks()
+
+    def _chunk_files(self) -> list[tuple[int, Path]] | None:
+        """(first patch, file) of every chunk of ``patches``; None where the key encoding is not
+        zarr v3's default one (then chunk files cannot be named without zarr)."""
+        meta = json.loads((self.path / "patches" / "zarr.json").read_text())
+        enc = meta.get("chunk_key_encoding", {})
+        if enc.get("name") != "default" or meta.get("storage_transformers") or any(
+                c.get("name") == "sharding_indexed" for c in meta.get("codecs", [])):
+            return None
+        sep = enc.get("configuration", {}).get("separator", "/")
+        step = int(meta["chunk_grid"]["configuration"]["chunk_shape"][0])
+        rest = sep.join("0" for _ in self.patches.shape[1:])
+        return [(i * step, self.path / "patches" / ("c" + sep + str(i) + sep + rest).replace("/", os.sep))
+                for i in range(-(-len(self) // step))]
+
+    def _check_chunks(self) -> None:
+        """Refuse a store with a missing chunk file (zarr would read it as the fill value: constant
+        patches that would train silently); cheap: one stat per chunk."""
+        files = self._chunk_files()
+        step = int(self.patches.chunks[0])
+        for first, f in files or []:
+            if not f.is_file():
+                raise CorpusError(f"{self.path}: chunk file {f.relative_to(self.path)} (patches {first} to "
+                                  f"{min(first + step, len(self)) - 1}) is missing: the store is damaged; rebuild it "
+                                  "(corpus build --fresh) or restore it from a copy")
+
+    def verify(self) -> list[str]:
+        """Recompute the sha256 of every source's stored patches against the manifest's.
+
+        Returns
+        -------
+        list of str
+            One message per source whose patches differ (empty when all match); sources of stores
+            built before the checksums existed are reported as unchecked.
+        """
+        problems = []
+        for e in self.manifest["sources"]:
+            if e.get("status") != "ok":
+                continue
+            a, b = e["patch_range"]
+            want = e.get("patches_sha256")
+            if want is None:
+                problems.append(f"{e['name']}: no checksum recorded (store built by an older warmstart): unchecked")
+                continue
+            h = hashlib.sha256()
+            for i in range(a, b, 4096):
+                h.update(memoryview(np.ascontiguousarray(self.patches[i:min(i + 4096, b)])).cast("B"))
+            if h.hexdigest() != want:
+                problems.append(f"{e['name']}: patches {a} to {b - 1} do not match their recorded sha256 (damaged)")
+        return problems
 
     def __len__(self) -> int:
         return int(self.patches.shape[0])
@@ -274,11 +326,15 @@ class StoreWriter:
             from zarr.codecs import BloscCodec
 
             compressors = None if s.compression == "none" else BloscCodec(cname=s.compression, clevel=5, shuffle="shuffle")
+            # Every chunk is written, even one that equals the fill value, so that a missing chunk
+            # file always means damage (checked whenever the store is opened).
             self.patches = self.root.create_array("patches", shape=(0,) + patch_shape, dtype=dtype,
-                                                  chunks=(s.chunk_patches,) + patch_shape, compressors=compressors)
+                                                  chunks=(s.chunk_patches,) + patch_shape, compressors=compressors,
+                                                  config={"write_empty_chunks": True})
             self.journal_dir.mkdir(exist_ok=True)
             write_json(build_file, build)
         self.journal_dir.mkdir(exist_ok=True)
+        self._digest = hashlib.sha256()  # of the stored codes appended since the last journalled source
 
     def records(self) -> list[dict[str, Any]]:
         """Journalled source records, by position."""
@@ -298,8 +354,10 @@ class StoreWriter:
         for part in ([codes] if isinstance(codes, np.ndarray) else codes):
             m = int(len(part))
             if m:
+                part = np.ascontiguousarray(part, dtype=self.patches.dtype)
                 self.patches.resize((stop + m,) + tuple(self.patches.shape[1:]))
                 self.patches[stop:stop + m] = part
+                self._digest.update(memoryview(part).cast("B"))
                 stop += m
         return stop
 
@@ -307,10 +365,12 @@ class StoreWriter:
         """Cut the patches back to ``n`` (drops a source that failed half-way)."""
         if self.patches.shape[0] != n:
             self.patches.resize((n,) + tuple(self.patches.shape[1:]))
+        self._digest = hashlib.sha256()
 
     def journal(self, record: dict[str, Any], columns: Mapping[str, np.ndarray], start: int) -> dict[str, Any]:
         """Journal a source whose patches are ``start:`` the current end: index rows, then record."""
-        record = dict(record, start=int(start), stop=int(self.patches.shape[0]))
+        record = dict(record, start=int(start), stop=int(self.patches.shape[0]), patches_sha256=self._digest.hexdigest())
+        self._digest = hashlib.sha256()
         stem = self.journal_dir / f"{record['position']:06d}"
         tmp = stem.with_name(f".{stem.name}.index.npz")
         with open(tmp, "wb") as fh:
