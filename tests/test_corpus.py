@@ -386,3 +386,21 @@ def test_checksums_survive_shards_and_merge(small_archive, tmp_path):
     single = build_corpus(small_archive, tmp_path / "s.zarr", SMALL, report=False, progress=False)
     sums = lambda p: {e["name"]: e["patches_sha256"] for e in open_corpus(p).manifest["sources"]}  # noqa: E731
     assert sums(merged) == sums(single.path) and open_corpus(merged).verify() == []
+
+
+@pytest.mark.parametrize("recipe", ["smoke", "cpu-lowres"])
+def test_a_single_2d_image_is_a_usable_source(tmp_path, recipe):
+    # scikit-image's bundled camera.png (512 x 512, uint8): real data, one slice. The recipes'
+    # scale factor 2 must not be applied to its one-slice Z axis.
+    from skimage import data
+    import tifffile
+
+    from warmstart.recipe import load_recipe
+
+    (tmp_path / "a").mkdir()
+    tifffile.imwrite(tmp_path / "a" / "camera.tif", data.camera())
+    s = load_recipe(recipe, ["workers=1"]).corpus
+    res = build_corpus(tmp_path / "a", tmp_path / "c.zarr", s, report=False, progress=False)
+    assert res.exit_code == 0 and res.n_patches > 0
+    e = open_corpus(res.path).manifest["sources"][0]
+    assert e["downscale_factors"][0] == 1.0 and e["downscale_factors"][1] == s.sampling.scale_factor

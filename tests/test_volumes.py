@@ -327,3 +327,18 @@ def test_pydicom_multiframe_and_colour_files():
     np.testing.assert_array_equal(vol.read((slice(3, 9),)), ref[3:9])
     with pytest.raises(VolumeReadError, match="colour DICOM"):
         open_volume(get_testdata_file("SC_rgb_rle_2frame.dcm"))
+
+
+def test_ome_zarr_scale_without_a_unit_is_an_unknown_voxel_size(tmp_path):
+    # OME-NGFF 0.4 "axes": "unit" is optional and has no default; ome-zarr's writer leaves it out
+    # unless asked. A scale with no unit must not be read as micrometres.
+    from ome_zarr.writer import write_image
+
+    path = tmp_path / "nounit.ome.zarr"
+    write_image(textured(shape=(8, 64, 64)), str(path), scale_factors=[2], axes="zyx", scale={"z": 2.0, "y": 0.5, "x": 0.5})
+    import zarr
+
+    axes = zarr.open_group(str(path), mode="r").attrs.asdict()
+    ms = axes.get("multiscales") or axes["ome"]["multiscales"]
+    assert all("unit" not in a for a in ms[0]["axes"])  # the file really has no units
+    assert open_volume(path).voxel_size_um == (None, None, None)

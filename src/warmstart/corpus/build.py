@@ -123,7 +123,7 @@ def process_source(job: dict[str, Any]) -> dict[str, Any]:
             with vol:
                 rec["format"] = vol.source.format  # e.g. "ome-zarr" for a zarr folder with multiscales
                 ref = fit_intensity(vol, s.intensity)
-                factors, notes = downscale_factors(vol.voxel_size_um, s.sampling)
+                factors, notes = downscale_factors(vol.voxel_size_um, s.sampling, vol.shape)
                 rng = np.random.default_rng(source_seed(s.sampling.seed, cand.name))
                 plan = plan_patches(vol.shape, factors, s.sampling, rng)
                 if len(plan) == 0:

@@ -28,13 +28,29 @@ _AXIS_INDEX = {"Z": 0, "Y": 1, "X": 2}
 _INPLANE = {0: (1, 2), 1: (0, 2), 2: (0, 1)}  # axes (u, v) of a patch sliced along 0/1/2
 
 
-def downscale_factors(voxel_size_um: tuple[float | None, ...], s: SamplingSettings) -> tuple[tuple[float, float, float], list[str]]:
+def downscale_factors(voxel_size_um: tuple[float | None, ...], s: SamplingSettings,
+                      shape: tuple[int, int, int] | None = None) -> tuple[tuple[float, float, float], list[str]]:
     """Per-axis downscale factors (Z, Y, X) and notes on what could not be honoured.
 
     With ``target_voxel_um`` and a known voxel size, ``f = target / voxel``; an axis of unknown
     size takes ``scale_factor`` and a note says so. Without a target, ``isotropic`` and all three
     sizes known: ``f = scale_factor * max(voxel) / voxel`` (cubic output voxels, no upsampling).
+    Given the volume's ``shape``, an axis shorter than its factor is not downscaled (a single
+    2-D image has one slice: halving it would leave nothing).
+
+    Examples
+    --------
+    >>> from warmstart.corpus.settings import SamplingSettings
+    >>> downscale_factors((None, None, None), SamplingSettings(scale_factor=2.0), shape=(1, 512, 512))[0]
+    (1.0, 2.0, 2.0)
     """
+    factors, notes = _factors(voxel_size_um, s)
+    if shape is not None:
+        factors = tuple(1.0 if f > 1 and n < f else f for f, n in zip(factors, shape))  # type: ignore[assignment]
+    return factors, notes
+
+
+def _factors(voxel_size_um: tuple[float | None, ...], s: SamplingSettings) -> tuple[tuple[float, float, float], list[str]]:
     notes: list[str] = []
     out = []
     known = [v for v in voxel_size_um if v is not None]

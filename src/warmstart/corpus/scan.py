@@ -72,7 +72,7 @@ def scan_archive(archive: str | os.PathLike[str], settings: CorpusSettings | Non
                     ref = fit_intensity(vol, quick)
                     row.update(range=[ref.params["low"], ref.params["high"]], min=ref.stats["min"], max=ref.stats["max"],
                                nonfinite=ref.stats["n_nonfinite"])
-                    factors, _ = downscale_factors(vol.voxel_size_um, s.sampling)
+                    factors, _ = downscale_factors(vol.voxel_size_um, s.sampling, vol.shape)
                     if len(plan_patches(vol.shape, factors, s.sampling, np.random.default_rng(0))) == 0:
                         raise WarmstartError(f"{c.path}: smaller than one {s.sampling.patch_size} px patch")
             row["status"] = "ok"

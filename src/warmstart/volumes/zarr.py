@@ -73,7 +73,10 @@ def ome_levels(attrs: dict[str, Any], ndim: int = 5) -> tuple[list[dict[str, Any
         vs = {}
         for a, s, g in zip(axes_md, scale, global_scale):
             if a.get("type", "space" if a["name"].lower() in "zyx" else None) == "space":
-                vs[a["name"].lower()] = to_micrometres(s * g, a.get("unit"))
+                # OME-NGFF gives a unit no default: a scale without one is a number of unknown
+                # length, so the voxel size stays unknown (never guessed as micrometres).
+                unit = a.get("unit")
+                vs[a["name"].lower()] = None if not unit else to_micrometres(s * g, unit)
         levels.append({"path": ds["path"], "voxel_size_um": vs})
     return levels, names
 
