@@ -1,6 +1,9 @@
 """Readers: every format written by its own library reads back exactly, lazily, with its voxel size."""
 from __future__ import annotations
 
+import json
+import subprocess
+import sys
 import tracemalloc
 import warnings
 
@@ -342,3 +345,53 @@ def test_ome_zarr_scale_without_a_unit_is_an_unknown_voxel_size(tmp_path):
     ms = axes.get("multiscales") or axes["ome"]["multiscales"]
     assert all("unit" not in a for a in ms[0]["axes"])  # the file really has no units
     assert open_volume(path).voxel_size_um == (None, None, None)
+
+
+# --- what discovery must not trip over ------------------------------------------------------
+def test_links_to_folders_are_followed_once_and_loops_are_listed(tmp_path):
+    import os
+
+    from warmstart.volumes import discover
+
+    elsewhere = tmp_path / "elsewhere"
+    elsewhere.mkdir()
+    np.save(elsewhere / "v.npy", textured())
+    root = tmp_path / "archive"
+    root.mkdir()
+    os.symlink(elsewhere, root / "linked")
+    os.symlink(root, root / "linked" / "back")  # a loop back to the archive
+    found, ignored = discover(root)
+    assert [c.name for c in found] == ["linked/v.npy"]
+    assert any("already read" in i.reason for i in ignored)
+
+
+def test_a_named_pipe_called_tif_is_skipped_without_hanging(tmp_path):
+    import os
+
+    root = tmp_path / "archive"
+    root.mkdir()
+    os.mkfifo(root / "x.tif")
+    os.symlink(root / "missing.tif", root / "dangling.tif")
+    np.save(root / "v.npy", textured())
+    code = ("import json, sys; from warmstart.volumes import discover; f, i = discover(sys.argv[1]); "
+            "print(json.dumps([[c.name for c in f], {os.path.basename(x.path): x.reason for x in i}]))")
+    out = subprocess.run([sys.executable, "-c", "import os; " + code, str(root)], capture_output=True, text=True,
+                         timeout=60, check=True).stdout
+    names, reasons = json.loads(out)
+    assert names == ["v.npy"]
+    assert "not a regular file" in reasons["x.tif"] and "does not exist" in reasons["dangling.tif"]
+
+
+def test_a_corpus_written_inside_its_archive_is_not_read_back(tmp_path):
+    from warmstart.corpus.build import build_corpus
+    from warmstart.corpus.settings import CorpusSettings, SamplingSettings
+    from warmstart.volumes import discover
+
+    root = tmp_path / "archive"
+    root.mkdir()
+    np.save(root / "v.npy", textured(shape=(16, 64, 64)))
+    s = CorpusSettings(sampling=SamplingSettings(patch_size=32, max_per_source=20))
+    build_corpus(root, root / "c.zarr", s, report=False, progress=False)
+    found, ignored = discover(root)
+    assert [c.name for c in found] == ["v.npy"]
+    assert any(i.path.endswith("c.zarr") and "warmstart corpus" in i.reason for i in ignored)

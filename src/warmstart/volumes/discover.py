@@ -11,8 +11,10 @@ Rules, applied per folder while walking the archive in sorted order:
 """
 from __future__ import annotations
 
+import json
 import os
 import re
+import stat
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Sequence
@@ -72,6 +74,35 @@ def _is_2d_image(path: str) -> bool:
         return False
 
 
+def _not_readable_file(path: str) -> str | None:
+    """Why a directory entry cannot be a source file (None for a regular file): opening a named
+    pipe would wait forever, and a link may point nowhere."""
+    try:
+        st = os.stat(path)  # follows links; does not open, so a pipe does not block
+    except FileNotFoundError:
+        return "a link to a file that does not exist"
+    except OSError as err:
+        return f"cannot be examined ({err.strerror or err})"
+    if not stat.S_ISREG(st.st_mode):
+        return "not a regular file (a named pipe, socket or device)"
+    return None
+
+
+def _is_warmstart_output(folder: Path) -> bool:
+    """A corpus store (its build.json or manifest.json says so): warmstart's own output, never a source."""
+    for name in ("manifest.json", "build.json"):
+        f = folder / name
+        if f.is_file():
+            try:
+                d = json.loads(f.read_text())
+            except (OSError, ValueError):
+                continue
+            if isinstance(d, dict) and (d.get("format") == "warmstart-corpus" or "archive_names" in d or
+                                        ("settings" in d and "shard" in d)):
+                return True
+    return False
+
+
 def _classify_folder(folder: Path, root: Path, names: list[str]) -> tuple[list[Candidate], list[Ignored]]:
     found: list[Candidate] = []
     ignored: list[Ignored] = []
@@ -81,6 +112,10 @@ def _classify_folder(folder: Path, root: Path, names: list[str]) -> tuple[list[C
         p = str(folder / n)
         low = n.lower()
         if n.startswith("."):
+            continue
+        why = _not_readable_file(p)
+        if why:
+            ignored.append(Ignored(p, why))
             continue
         if low.endswith(mrc.SUFFIXES):
             found.append(Candidate(p, "mrc", rel(p)))
@@ -137,15 +172,26 @@ def discover(archive: str | os.PathLike[str]) -> tuple[list[Candidate], list[Ign
         return [Candidate(str(root), fmt, root.name, (str(root),) if fmt == "slices" else ())], []
     found: list[Candidate] = []
     ignored: list[Ignored] = []
-    for folder, dirs, files in os.walk(root):
+    seen = {os.path.realpath(root)}
+    # Links to folders are followed (archives are often assembled from links); a folder reached a
+    # second time (a link loop, or two links to one place) is listed as ignored, not read twice.
+    for folder, dirs, files in os.walk(root, followlinks=True):
         here = Path(folder)
         dirs.sort(key=slices.natural_key)
         keep = []
         for d in dirs:
             if d.startswith("."):
                 continue
+            real = os.path.realpath(here / d)
+            if real in seen:
+                ignored.append(Ignored(str(here / d), f"a link to a folder already read ({real})"))
+                continue
+            seen.add(real)
             if is_zarr_path(here / d):
-                found.append(Candidate(str(here / d), "zarr", os.path.relpath(here / d, root)))
+                if _is_warmstart_output(here / d):
+                    ignored.append(Ignored(str(here / d), "a warmstart corpus store (output, not a source)"))
+                else:
+                    found.append(Candidate(str(here / d), "zarr", os.path.relpath(here / d, root)))
             else:
                 keep.append(d)
         dirs[:] = keep
