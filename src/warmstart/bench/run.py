@@ -11,6 +11,7 @@ from typing import Any, Callable, Sequence
 import numpy as np
 
 from ..base.atomic import write_json
+from ..base.lock import locks_output
 from ..errors import WarmstartError
 from .data import load_pairs, make_split, n_classes
 from .settings import BenchSettings
@@ -159,6 +160,7 @@ def summarize(runs: list[dict[str, Any]], contenders: list[Contender], s: BenchS
     return out
 
 
+@locks_output("bench")
 def run_bench(labels: str | os.PathLike[str], encoders: Sequence[str | os.PathLike[str]], out: str | os.PathLike[str],
               settings: BenchSettings | None = None, *, progress: bool = True) -> dict[str, Any]:
     """Fine-tune random initialization and every encoder file on the same labelled tiles.

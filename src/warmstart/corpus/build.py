@@ -22,6 +22,7 @@ from typing import Any
 import numpy as np
 
 from .. import __version__
+from ..base.lock import locks_output
 from ..errors import CorpusError, VolumeReadError, WarmstartError
 from ..intensity import fit_intensity
 from ..volumes import Candidate, describe_failure, discover, open_volume
@@ -224,6 +225,7 @@ def _prepare_output(out: Path, fresh: bool) -> None:
         shutil.rmtree(out)
 
 
+@locks_output("corpus build")
 def build_corpus(
     archive: str | os.PathLike[str],
     out: str | os.PathLike[str],

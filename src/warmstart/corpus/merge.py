@@ -14,6 +14,7 @@ from typing import Sequence
 
 import numpy as np
 
+from ..base.lock import locks_output
 from ..errors import CorpusError
 from .manifest import build_manifest
 from .settings import CorpusSettings
@@ -23,6 +24,7 @@ from .store import INDEX_COLUMNS, StoreWriter, open_corpus
 __all__ = ["merge_corpora"]
 
 
+@locks_output("corpus merge")
 def merge_corpora(inputs: Sequence[str | os.PathLike[str]], out: str | os.PathLike[str], *,
                   report: bool = True, progress: bool = True) -> Path:
     """Merge finished shard stores into ``out``.

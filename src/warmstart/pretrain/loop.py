@@ -20,6 +20,7 @@ import torch
 
 from .. import __version__
 from ..base.atomic import write_json
+from ..base.lock import locks_output
 from ..errors import PretrainError
 from ..encoders import build_encoder
 from ..run_folder import CHECKPOINTS, CORPUS_MANIFEST, HISTORY, LIBRARY_LOGS, RECIPE, SUMMARY, write_networks
@@ -172,6 +173,12 @@ def _precision(s: PretrainSettings) -> str:
     return "32-true"
 
 
+def _first_process() -> bool:
+    """The process that writes the run folder's own files (the others of a distributed run do not)."""
+    return os.environ.get("LOCAL_RANK", "0") == "0" and os.environ.get("NODE_RANK", "0") == "0"
+
+
+@locks_output("pretrain", when=_first_process)
 def pretrain(corpus: str | os.PathLike[str], out: str | os.PathLike[str], settings: PretrainSettings | None = None, *,
              resume: bool = False, progress: bool = True) -> PretrainResult:
     """Pretrain an encoder on a corpus store.
@@ -208,7 +215,7 @@ def pretrain(corpus: str | os.PathLike[str], out: str | os.PathLike[str], settin
     if not resume and last.exists():
         raise PretrainError(f"{out}: holds a run already; pass --resume to continue it or choose a new folder")
     out.mkdir(parents=True, exist_ok=True)
-    first_process = os.environ.get("LOCAL_RANK", "0") == "0" and os.environ.get("NODE_RANK", "0") == "0"
+    first_process = _first_process()
     store = open_corpus(corpus)
     names = {e["name"]: e["position"] for e in store.manifest["sources"]}
     unknown = sorted(set(s.source_weights) - set(names))
