@@ -446,7 +446,7 @@ def test_cli_export_inspect_and_model_card(r18, tmp_path, capsys):
     assert "resnet18" in text and "percentiles 0.5 / 99.5" in text
     assert main(["inspect", str(out), "--json"]) == 0
     assert json.loads(capsys.readouterr().out)["tensors"]["count"] == 120
-    card = tmp_path / "card.md"
+    card = tmp_path / "cards" / "card.md"  # into a folder that does not exist yet
     assert main(["inspect", str(out), "--card", str(card), "--verify"]) == 0
     assert "verified" in capsys.readouterr().out
     md = card.read_text()

@@ -78,3 +78,90 @@ def test_pretrain_bench_and_merge_outputs_are_locked_too(tmp_path, command, caps
     with output_lock(out, "something else"):
         assert main(["-q", *argv]) == 1
     assert "something else (process" in capsys.readouterr().err
+
+
+# --- a full disk -----------------------------------------------------------------------------
+def test_a_full_disk_mid_build_names_the_path_and_the_rerun_resumes(tmp_path, monkeypatch, capsys):
+    import errno
+
+    from warmstart.cli import main
+    from warmstart.corpus.store import StoreWriter, open_corpus
+
+    root = tmp_path / "archive"
+    root.mkdir()
+    for i in range(3):
+        np.save(root / f"v{i}.npy", textured(shape=(16, 64, 64), seed=i))
+    argv = ["-q", "corpus", "build", str(root), "-o", str(tmp_path / "c.zarr"), "--patch-size", "32", "--workers", "1",
+            "--no-report"]
+    real = StoreWriter.journal
+    calls = {"n": 0}
+
+    def full_disk(self, record, columns, start):
+        calls["n"] += 1
+        if calls["n"] == 2:
+            raise OSError(errno.ENOSPC, "No space left on device", str(self.journal_dir / "000001.json"))
+        return real(self, record, columns, start)
+
+    monkeypatch.setattr(StoreWriter, "journal", full_disk)
+    assert main(argv) == 1
+    err = capsys.readouterr().err
+    assert "000001.json: no space left on device" in err and "Traceback" not in err
+    assert not (tmp_path / "c.zarr" / "manifest.json").exists()  # nothing passes as finished
+    monkeypatch.setattr(StoreWriter, "journal", real)
+    assert main(argv) == 0
+    main(["-q", "corpus", "build", str(root), "-o", str(tmp_path / "ref.zarr"), "--patch-size", "32", "--workers", "1",
+          "--no-report"])
+    np.testing.assert_array_equal(open_corpus(tmp_path / "c.zarr").read(), open_corpus(tmp_path / "ref.zarr").read())
+
+
+def test_a_full_disk_during_export_leaves_no_file(tmp_path, monkeypatch):
+    import errno
+
+    import safetensors.numpy
+
+    from warmstart.errors import ExportError
+    from warmstart.export.file import write_encoder_file
+
+    def full_disk(arrays, filename, metadata=None):
+        Path(filename).write_bytes(b"half a file")
+        raise OSError(errno.ENOSPC, "No space left on device", filename)
+
+    monkeypatch.setattr(safetensors.numpy, "save_file", full_disk)
+    with pytest.raises(ExportError, match="No space left on device"):
+        write_encoder_file(tmp_path / "e.safetensors", {"w": np.zeros(3, np.float32)}, {"format": "warmstart-encoder"})
+    assert list(tmp_path.iterdir()) == []
+
+
+# --- output paths ----------------------------------------------------------------------------
+def test_output_paths_that_cannot_be_used_get_a_message_and_nothing_is_overwritten(archive, tmp_path, capsys):
+    from warmstart.cli import main
+    from warmstart.export.file import write_encoder_file
+
+    a_file = tmp_path / "notes.txt"
+    a_file.write_text("keep me")
+    assert main(["-q", "corpus", "build", str(archive), "-o", str(a_file)]) == 1
+    assert "is a file, not a folder" in capsys.readouterr().err and a_file.read_text() == "keep me"
+    # an encoder file aimed at a folder, or over a file that is not one of ours
+    folder = tmp_path / "models"
+    folder.mkdir()
+    from warmstart.errors import ExportError
+
+    with pytest.raises(ExportError, match="is a folder"):
+        write_encoder_file(folder, {"w": np.zeros(2, np.float32)}, {})
+    assert list(folder.iterdir()) == [] and not list(tmp_path.glob(".*.partial"))
+    with pytest.raises(ExportError, match="not a warmstart encoder file; not overwriting"):
+        write_encoder_file(a_file, {"w": np.zeros(2, np.float32)}, {})
+    assert a_file.read_text() == "keep me"
+
+
+def test_pretrain_into_a_file_is_refused(tmp_path, capsys):
+    pytest.importorskip("torch")
+    from conftest import tiny_corpus
+    from warmstart.cli import main
+
+    corpus = tiny_corpus(tmp_path / "t")
+    target = tmp_path / "run"
+    target.write_text("x")
+    assert main(["-q", "pretrain", str(corpus), "-o", str(target)]) == 1
+    err = capsys.readouterr().err
+    assert str(target) in err and "Traceback" not in err and target.read_text() == "x"

@@ -404,7 +404,13 @@ def cmd_inspect(args: argparse.Namespace) -> int:
             raise ExportError(f"{args.file}: fingerprint {got} is not the expected {args.expect_sha256}: this is not the "
                               "file its publisher released (or it was changed since)")
     if args.card:
-        Path(args.card).write_text(model_card(m, Path(args.file).stem))
+        card = Path(args.card)
+        if card.is_dir():
+            from .errors import ExportError
+
+            raise ExportError(f"{card}: is a folder; give the card's file name, e.g. {card / 'encoder-card.md'}")
+        card.parent.mkdir(parents=True, exist_ok=True)
+        card.write_text(model_card(m, Path(args.file).stem))
     if args.json:
         _print_json(m)
     else:
@@ -458,6 +464,25 @@ def cmd_demo(args: argparse.Namespace) -> int:
     return 0
 
 
+def describe_os_error(err: OSError) -> str:
+    """An operating-system error in words: the path, what went wrong, what to do."""
+    import errno
+
+    where = err.filename or "an output file"
+    if err.errno == errno.ENOSPC:
+        return (f"{where}: no space left on device; free some space and rerun the same command (finished work "
+                "is kept and the run resumes)")
+    if err.errno in (errno.EACCES, errno.EPERM, errno.EROFS):
+        return f"{where}: permission denied (or a read-only file system); choose an output you can write to"
+    if err.errno == errno.ENOTDIR:
+        return f"{where}: a path component is a file, not a folder"
+    if err.errno == errno.EISDIR:
+        return f"{where}: is a folder where a file was expected"
+    if err.errno == errno.EEXIST:
+        return f"{where}: exists and is not a folder"
+    return f"{where}: {err.strerror or err}"
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Run the command line; returns the exit status."""
     args = build_parser().parse_args(argv)
@@ -482,6 +507,9 @@ def main(argv: Sequence[str] | None = None) -> int:
         return handlers[key](args)
     except WarmstartError as err:
         print(f"warmstart: error: {err}", file=sys.stderr)
+        return EXIT_ERROR
+    except OSError as err:  # the disk, not the program: say which path and what, keep what was finished
+        print(f"warmstart: error: {describe_os_error(err)}", file=sys.stderr)
         return EXIT_ERROR
     except KeyboardInterrupt:
         print("warmstart: interrupted; rerun the same command to resume", file=sys.stderr)

@@ -319,6 +319,8 @@ class StoreWriter:
             self.root = zarr.open_group(str(self.path), mode="r+")
             self.patches = self.root["patches"]
         else:
+            if self.path.exists() and not self.path.is_dir():
+                raise CorpusError(f"{self.path}: is a file, not a folder; give a new folder for the corpus store")
             if self.path.exists() and any(self.path.iterdir()):
                 raise CorpusError(f"{self.path}: exists and is not a corpus build; choose an empty or new folder")
             self.path.mkdir(parents=True, exist_ok=True)

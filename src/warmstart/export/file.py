@@ -113,6 +113,7 @@ def write_encoder_file(path: str | os.PathLike[str], arrays: Mapping[str, np.nda
     from safetensors.numpy import save_file
 
     path = Path(path)
+    _check_target(path)
     arrays = {k: _contiguous(v) for k, v in arrays.items()}
     full = dict(manifest)
     full["tensors"] = {"count": len(arrays), "sha256": tensor_digest(arrays),
@@ -121,9 +122,30 @@ def write_encoder_file(path: str | os.PathLike[str], arrays: Mapping[str, np.nda
     full["digest"] = manifest_digest(full)
     path.parent.mkdir(parents=True, exist_ok=True)
     tmp = path.with_name(f".{path.name}.partial")
-    save_file(arrays, str(tmp), metadata={METADATA_KEY: json.dumps(full, allow_nan=False)})
-    os.replace(tmp, path)
+    try:
+        save_file(arrays, str(tmp), metadata={METADATA_KEY: json.dumps(full, allow_nan=False)})
+        os.replace(tmp, path)
+    except BaseException as err:
+        tmp.unlink(missing_ok=True)  # never leave a partial file behind
+        if isinstance(err, OSError) or "No space left" in str(err):
+            raise ExportError(f"{path}: cannot be written ({getattr(err, 'strerror', None) or err}); "
+                              "nothing was left behind") from err
+        raise
     return path
+
+
+def _check_target(path: Path) -> None:
+    """Refuse to write over a folder or over a file that is not a warmstart encoder file."""
+    if path.is_dir():
+        raise ExportError(f"{path}: is a folder; give the encoder file's name, e.g. {path / 'encoder.safetensors'}")
+    if path.exists():
+        try:
+            meta = _open(path, lambda f: f.metadata())
+        except ExportError:
+            meta = None
+        if not meta or METADATA_KEY not in meta:
+            raise ExportError(f"{path}: exists and is not a warmstart encoder file; not overwriting it "
+                              "(choose another name or remove it yourself)")
 
 
 def read_manifest(path: str | os.PathLike[str]) -> dict[str, Any]:
