@@ -165,3 +165,52 @@ def test_pretrain_into_a_file_is_refused(tmp_path, capsys):
     assert main(["-q", "pretrain", str(corpus), "-o", str(target)]) == 1
     err = capsys.readouterr().err
     assert str(target) in err and "Traceback" not in err and target.read_text() == "x"
+
+
+# --- slice geometry --------------------------------------------------------------------------
+def test_a_dicom_series_with_slices_missing_is_refused_naming_the_gap(tmp_path):
+    # A CT series written with pydicom from its shipped CT_small.dcm; six slices deleted.
+    from conftest import write_dicom_series
+    from warmstart.errors import VolumeReadError
+    from warmstart.volumes import discover, open_volume
+
+    paths = write_dicom_series(tmp_path / "ct", np.zeros((16, 32, 32), np.float32), spacing_mm=(2.5, 0.5, 0.5))
+    for p in paths[5:11]:
+        p.unlink()
+    (cand,) = discover(tmp_path / "ct")[0]
+    with pytest.raises(VolumeReadError, match=r"slices missing between positions 10 and 27.5 mm .*step of 17.5 .* 2.5"):
+        open_volume(cand)
+
+
+def test_a_dicom_series_with_a_duplicate_position_is_refused(tmp_path):
+    import pydicom
+
+    from conftest import write_dicom_series
+    from warmstart.errors import VolumeReadError
+    from warmstart.volumes import discover, open_volume
+
+    paths = write_dicom_series(tmp_path / "ct", np.zeros((6, 32, 32), np.float32))
+    ds = pydicom.dcmread(paths[3])
+    ds.ImagePositionPatient = pydicom.dcmread(paths[2]).ImagePositionPatient
+    ds.save_as(paths[3])
+    (cand,) = discover(tmp_path / "ct")[0]
+    with pytest.raises(VolumeReadError, match="two slices at one position"):
+        open_volume(cand)
+
+
+def test_a_slice_folder_with_a_numbering_gap_is_refused_and_an_even_one_is_not(tmp_path):
+    from PIL import Image
+
+    from warmstart.errors import VolumeReadError
+    from warmstart.volumes import discover, open_volume
+
+    for name, numbers in (("gap", [0, 1, 2, 3, 5, 6, 7]), ("even", [0, 2, 4, 6, 8])):
+        (tmp_path / name).mkdir()
+        for i, sl in zip(numbers, textured(shape=(len(numbers), 40, 40), dtype=np.uint8, lo=5, hi=250)):
+            Image.fromarray(sl).save(tmp_path / name / f"layer_{i:04d}.png")
+    (gap,) = discover(tmp_path / "gap")[0]
+    with pytest.raises(VolumeReadError, match=r"slices missing between positions 3 and 5 \(layer_0003.png\) "
+                                              r"\(layer_0005.png\)"):
+        open_volume(gap)
+    (even,) = discover(tmp_path / "even")[0]
+    assert open_volume(even).shape == (5, 40, 40)  # every second slice exported: evenly spaced, accepted

@@ -20,7 +20,8 @@ from typing import Any, Sequence
 import numpy as np
 
 from ..errors import VolumeReadError
-from .base import SliceFilesBackend, ArrayBackend, Volume, check_pixel_dtype, make_source
+from .base import ArrayBackend, SliceFilesBackend, Volume, check_pixel_dtype, make_source
+from .geometry import check_slice_steps
 
 __all__ = ["open_dicom", "is_dicom_file", "dicom_series", "CLINICAL_MODALITIES"]
 
@@ -88,13 +89,11 @@ def _sort_slices(headers: list[_SliceHeader]) -> tuple[list[_SliceHeader], float
         depth = [float(np.dot(h.position, normal)) for h in headers]  # type: ignore[arg-type]
         order = np.argsort(depth, kind="stable")
         headers = [headers[i] for i in order]
-        steps = np.diff(np.sort(depth))
+        sorted_depth = np.sort(depth)
+        steps = np.diff(sorted_depth)
         step = float(np.median(steps)) if len(steps) else None
-        if step is not None and step <= 0:
-            raise VolumeReadError(
-                f"{os.path.dirname(headers[0].path)}: several slices share one position; "
-                "the series is not a single volume"
-            )
+        check_slice_steps(sorted_depth, os.path.dirname(headers[0].path), "mm",
+                          [os.path.basename(h.path) for h in headers])
         return headers, step
     return sorted(headers, key=lambda h: h.instance), None
 

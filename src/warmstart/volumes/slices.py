@@ -14,6 +14,7 @@ import numpy as np
 
 from ..errors import VolumeReadError
 from .base import SliceFilesBackend, Volume, check_pixel_dtype, make_source
+from .geometry import check_slice_steps
 
 __all__ = ["open_slices", "natural_key", "read_2d_image"]
 
@@ -28,6 +29,18 @@ def natural_key(name: str) -> list[object]:
     ['s1.png', 's2.png', 's10.png']
     """
     return [int(t) if t.isdigit() else t.lower() for t in _DIGITS.split(name)]
+
+
+def _slice_numbers(names: Sequence[str]) -> list[int] | None:
+    """The slice number of each name: the one digit run that differs between the names (None
+    when no single run does, e.g. names without numbers)."""
+    runs = [_DIGITS.findall(n) for n in names]
+    if len({len(r) for r in runs}) != 1 or not runs[0]:
+        return None
+    varying = [i for i in range(len(runs[0])) if len({r[i] for r in runs}) > 1]
+    if len(varying) != 1:
+        return None
+    return [int(r[varying[0]]) for r in runs]
 
 
 def read_2d_image(path: str, rgb: str = "refuse") -> np.ndarray:
@@ -68,6 +81,11 @@ def open_slices(files: Sequence[str | os.PathLike[str]], folder: str | os.PathLi
     files = sorted((os.fspath(f) for f in files), key=lambda f: natural_key(os.path.basename(f)))
     if not files:
         raise VolumeReadError(f"{folder}: no slice files")
+    if len(files) > 1:
+        numbers = _slice_numbers([os.path.basename(f) for f in files])
+        if numbers is not None:  # a gap in the numbering is a missing slice
+            check_slice_steps(numbers, os.fspath(folder or os.path.dirname(files[0])), "",
+                              [os.path.basename(f) for f in files])
     first = read_2d_image(files[0], rgb)
     dtype = check_pixel_dtype(first.dtype, files[0])
     voxel: tuple[float | None, float | None, float | None] = (None, None, None)
