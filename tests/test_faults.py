@@ -214,3 +214,81 @@ def test_a_slice_folder_with_a_numbering_gap_is_refused_and_an_even_one_is_not(t
         open_volume(gap)
     (even,) = discover(tmp_path / "even")[0]
     assert open_volume(even).shape == (5, 40, 40)  # every second slice exported: evenly spaced, accepted
+
+
+# --- missing chunks in a source zarr volume --------------------------------------------------
+def _ome(tmp_path, data):
+    from ome_zarr.writer import write_image
+
+    path = tmp_path / "grain.ome.zarr"
+    write_image(data, str(path), scale_factors=[2], axes="zyx", scale={"z": 1.0, "y": 1.0, "x": 1.0},
+                axes_units={a: "micrometer" for a in "zyx"}, storage_options={"chunks": (8, 32, 32)})
+    return path
+
+
+def _finest(path):
+    import zarr
+
+    from warmstart.volumes.zarr import ome_levels
+
+    group = zarr.open_group(str(path), mode="r")
+    name = ome_levels(group.attrs.asdict(), 3)[0][0]["path"]  # "0" or "s0", as the writer's version names it
+    return group[name], name
+
+
+def test_missing_chunks_of_a_source_are_gaps_not_zeros(tmp_path):
+    import warnings
+
+    import zarr
+
+    from warmstart.intensity import IntensitySettings, fit_intensity
+    from warmstart.volumes import open_volume
+
+    data = textured(shape=(16, 64, 64), dtype=np.uint16, lo=6000, hi=20000)
+    path = _ome(tmp_path, data)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        clean = fit_intensity(open_volume(path), IntensitySettings())
+    level0, name = _finest(path)
+    (path / name / level0.metadata.encode_chunk_key((0, 0, 0))).unlink()
+    (path / name / level0.metadata.encode_chunk_key((1, 1, 1))).unlink()
+    with pytest.warns(UserWarning, match="2 of 8 chunk files are missing"):
+        vol = open_volume(path)
+    block = vol.read()
+    assert np.isnan(block[:8, :32, :32]).all() and np.isfinite(block[8:, :32, :32]).all()
+    assert vol.meta["missing_chunks"] == 2
+    damaged = fit_intensity(vol, IntensitySettings())
+    # zarr alone would read the gaps as zeros and put the 0.5 % percentile at 0
+    assert damaged.stats["percentiles"]["0.5"] > 5000
+    assert damaged.stats["percentiles"]["0.5"] == pytest.approx(clean.stats["percentiles"]["0.5"], rel=0.05)
+
+
+def test_missing_chunks_stay_out_of_the_patches_and_are_reported(tmp_path):
+    import zarr
+
+    from warmstart.corpus.store import open_corpus
+
+    (tmp_path / "a").mkdir()
+    data = textured(shape=(16, 64, 64), dtype=np.uint16, lo=6000, hi=20000)
+    path = _ome(tmp_path / "a", data)
+    arr, name = _finest(path)
+    (path / name / arr.metadata.encode_chunk_key((0, 0, 0))).unlink()
+    res = build_corpus(tmp_path / "a", tmp_path / "c.zarr", TINY, report=False, progress=False)
+    store = open_corpus(res.path)
+    e = store.manifest["sources"][0]
+    assert any("chunk files are missing" in w for w in e["warnings"])
+    assert e["counts"]["nonfinite"] > 0 and np.isfinite(store.read()).all()
+
+
+def test_a_zarr_array_with_every_chunk_missing_is_refused_by_name(tmp_path):
+    import zarr
+
+    from warmstart.corpus.scan import scan_archive
+
+    (tmp_path / "a").mkdir()
+    arr = zarr.create_array(str(tmp_path / "a" / "v.zarr"), shape=(8, 32, 32), dtype="uint16", chunks=(4, 16, 16))
+    arr[:] = textured(shape=(8, 32, 32), dtype=np.uint16)
+    for coords in np.ndindex(2, 2, 2):
+        (tmp_path / "a" / "v.zarr" / arr.metadata.encode_chunk_key(coords)).unlink()
+    (row,) = scan_archive(tmp_path / "a", TINY, progress=False).rows
+    assert row["status"] != "ok" and "all 8 chunk files are missing" in row["reason"]

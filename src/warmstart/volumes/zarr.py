@@ -15,6 +15,7 @@ import numpy as np
 
 from ..errors import VolumeReadError
 from .base import ArrayBackend, Volume, check_pixel_dtype, make_source
+from .gaps import GapMasked, missing_chunk_boxes, project_boxes
 from .units import to_micrometres
 
 __all__ = ["open_zarr", "ome_levels", "choose_level", "is_zarr_path"]
@@ -116,6 +117,12 @@ class _OmeSelect:
         return out if "z" in self._names else out[np.newaxis]
 
 
+def _names_of(arr: Any) -> list[str]:
+    """Axis names of a plain array as :func:`_squeeze_to_3d` reads it."""
+    n = len(arr.shape)
+    return ["y", "x"] if n == 2 else [f"_{i}" for i in range(n - 3)] + ["z", "y", "x"]
+
+
 def _squeeze_to_3d(arr: Any, path: str) -> Any:
     shape = tuple(arr.shape)
     if len(shape) == 2:
@@ -182,6 +189,7 @@ def open_zarr(
             meta.update(level=i, levels=[[lv["voxel_size_um"].get(a) for a in "zyx"] for lv in levels],
                         voxel_size_from="ome-ngff coordinateTransformations")
             array: Any = _OmeSelect(arr, names, fixed)
+            raw, raw_dir, raw_names, raw_fixed = arr, os.path.join(path, levels[i]["path"]), names, fixed
         else:
             arrays = list(node.array_keys())
             if len(arrays) != 1:
@@ -189,9 +197,23 @@ def open_zarr(
                     f"{path}: zarr group without OME multiscales metadata holds {len(arrays)} arrays "
                     f"({', '.join(arrays[:5])}); point at one array"
                 )
-            array = _squeeze_to_3d(node[arrays[0]], path)
+            raw, raw_dir = node[arrays[0]], os.path.join(path, arrays[0])
+            array = _squeeze_to_3d(raw, path)
+            raw_names, raw_fixed = _names_of(raw), {}
     else:
+        raw, raw_dir = node, path
         array = _squeeze_to_3d(node, path)
+        raw_names, raw_fixed = _names_of(raw), {}
     check_pixel_dtype(array.dtype, path)
+    gaps = missing_chunk_boxes(raw, raw_dir)
+    if gaps is not None and gaps[0]:
+        boxes, total = gaps
+        if len(boxes) == total:
+            raise VolumeReadError(f"{path}: all {total} chunk files are missing: the array holds no data "
+                                  "(a damaged copy, or one written empty)")
+        warnings.warn(f"{path}: {len(boxes)} of {total} chunk files are missing; read as gaps, left out of the "
+                      "intensity fit and of the patches", stacklevel=2)
+        meta.update(missing_chunks=len(boxes), chunks=total, stored_dtype=str(array.dtype))
+        array = GapMasked(array, project_boxes(boxes, raw_names, raw_fixed))
     meta["zarr_format"] = int(getattr(getattr(node, "metadata", None), "zarr_format", 0) or 0)
     return Volume(ArrayBackend(array), make_source(path, fmt), voxel, meta)
