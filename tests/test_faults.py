@@ -292,3 +292,43 @@ def test_a_zarr_array_with_every_chunk_missing_is_refused_by_name(tmp_path):
         (tmp_path / "a" / "v.zarr" / arr.metadata.encode_chunk_key(coords)).unlink()
     (row,) = scan_archive(tmp_path / "a", TINY, progress=False).rows
     assert row["status"] != "ok" and "all 8 chunk files are missing" in row["reason"]
+
+
+# --- labelled sets ---------------------------------------------------------------------------
+def _pair(folder, name, image, label):
+    import tifffile
+
+    (folder / "images").mkdir(parents=True, exist_ok=True)
+    (folder / "labels").mkdir(parents=True, exist_ok=True)
+    tifffile.imwrite(folder / "images" / name, image)
+    tifffile.imwrite(folder / "labels" / name, label)
+
+
+def test_images_and_labels_pair_on_the_full_name(tmp_path):
+    from warmstart.bench.data import read_pairs
+
+    img, lab = textured(shape=(4, 32, 32)), np.zeros((4, 32, 32), np.uint8)
+    _pair(tmp_path / "set", "scan.v1.tif", img, lab)
+    _pair(tmp_path / "set", "scan.v2.tif", img, lab)
+    assert [name for name, _, _ in read_pairs(tmp_path / "set")] == ["scan.v1", "scan.v2"]  # two pairs, not one
+    _pair(tmp_path / "dup", "a.tif", img, lab)
+    import tifffile
+
+    tifffile.imwrite(tmp_path / "dup" / "images" / "a.tiff", img)
+    from warmstart.errors import VolumeReadError
+
+    with pytest.raises(VolumeReadError, match="a.tif and a.tiff have the same name 'a'"):
+        read_pairs(tmp_path / "dup")
+
+
+def test_sparse_label_values_are_refused_with_the_values_and_the_remedy(tmp_path):
+    from warmstart.bench.data import load_pairs, n_classes
+    from warmstart.errors import VolumeReadError
+
+    lab = np.zeros((6, 32, 32), np.uint16)
+    lab[:, 8:16] = 30000
+    lab[:, 16:] = 60000
+    _pair(tmp_path / "set", "s.tif", textured(shape=(6, 32, 32)), lab)
+    pairs = load_pairs(tmp_path / "set")
+    with pytest.raises(VolumeReadError, match=r"s.tif: labels take 3 values \(0, 30000, 60000\).*0\.\.2"):
+        n_classes(pairs)

@@ -80,13 +80,39 @@ def read_pairs(labels: str | os.PathLike[str]) -> list[tuple[str, Path, Path]]:
         raise VolumeReadError(f"{root}: a labelled set needs folders images/ and labels/ (or give a TOML file of pairs)")
 
     def stems(folder: Path) -> dict[str, Path]:
-        return {p.name.split(".")[0]: p for p in sorted(folder.iterdir()) if not p.name.startswith(".")}
+        out: dict[str, Path] = {}
+        for p in sorted(folder.iterdir()):
+            if p.name.startswith("."):
+                continue
+            k = image_stem(p.name)
+            if k in out:
+                raise VolumeReadError(f"{folder}: {out[k].name} and {p.name} have the same name {k!r}; "
+                                      "keep one file per image")
+            out[k] = p
+        return out
 
     a, b = stems(images), stems(labs)
     lonely = sorted(set(a) ^ set(b))
     if lonely:
         raise VolumeReadError(f"{root}: no matching image/label for {', '.join(lonely[:5])}")
     return [(k, a[k], b[k]) for k in sorted(a)]
+
+
+_IMAGE_SUFFIXES = (".ome.tiff", ".ome.tif", ".ome.zarr", ".tiff", ".tif", ".png", ".zarr", ".mrc", ".map", ".rec",
+                   ".st", ".npy", ".dcm")
+
+
+def image_stem(name: str) -> str:
+    """A file's name without its image suffix (``scan.v1.tif`` -> ``scan.v1``, ``a.ome.tif`` -> ``a``).
+
+    >>> image_stem("scan.v1.tif"), image_stem("scan.v2.ome.tiff"), image_stem("slices")
+    ('scan.v1', 'scan.v2', 'slices')
+    """
+    low = name.lower()
+    for suffix in _IMAGE_SUFFIXES:
+        if low.endswith(suffix):
+            return name[: len(name) - len(suffix)]
+    return name
 
 
 def load_pairs(labels: str | os.PathLike[str], ignore_label: int | None = None) -> list[LabelledPair]:
@@ -112,11 +138,20 @@ def load_pairs(labels: str | os.PathLike[str], ignore_label: int | None = None) 
 
 def n_classes(pairs: list[LabelledPair], ignore_label: int | None = None) -> int:
     """Number of classes: the largest label (other than ``ignore_label``) plus one, at least 2."""
-    top = 0
+    top, where = 0, ""
+    seen: set[int] = set()
     for p in pairs:
         vals = p.label if ignore_label is None else p.label[p.label != ignore_label]
         if vals.size:
-            top = max(top, int(vals.max()))
+            if int(vals.max()) > top:
+                top, where = int(vals.max()), p.label_path
+            seen.update(int(v) for v in np.unique(vals))
+    if top + 1 > 16 and top + 1 > 2 * len(seen):
+        shown = ", ".join(map(str, sorted(seen)[:8])) + (", ..." if len(seen) > 8 else "")
+        raise VolumeReadError(
+            f"{where}: labels take {len(seen)} values ({shown}) but class numbers go up to {top}: give consecutive class numbers "
+            f"0..{len(seen) - 1} (e.g. numpy's np.unique(label, return_inverse=True)), or set bench.ignore_label for "
+            "a value that marks unlabelled voxels")
     return max(top + 1, 2)
 
 
