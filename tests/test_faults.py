@@ -332,3 +332,34 @@ def test_sparse_label_values_are_refused_with_the_values_and_the_remedy(tmp_path
     pairs = load_pairs(tmp_path / "set")
     with pytest.raises(VolumeReadError, match=r"s.tif: labels take 3 values \(0, 30000, 60000\).*0\.\.2"):
         n_classes(pairs)
+
+
+# --- tiny and empty corpora ------------------------------------------------------------------
+def test_the_smoke_recipe_trains_on_the_tiny_corpus_it_builds(tmp_path):
+    # Two stacks of 16 x 128 x 128: the smoke recipe keeps fewer patches than its batch of 32.
+    pytest.importorskip("torch")
+    from warmstart.pretrain.loop import pretrain
+    from warmstart.recipe import load_recipe
+
+    root = tmp_path / "archive"
+    root.mkdir()
+    for i in range(2):
+        np.save(root / f"s{i}.npy", textured(shape=(16, 128, 128), seed=i))
+    r = load_recipe("smoke", ["pretrain.max_steps=2"], default_section="pretrain")
+    res = build_corpus(root, tmp_path / "c.zarr", r.corpus, report=False, progress=False)
+    assert 2 <= res.n_patches < r.pretrain.batch_size
+    with pytest.warns(UserWarning, match=f"{res.n_patches} patches make no batch of 32"):
+        run = pretrain(res.path, tmp_path / "run", r.pretrain, progress=False)
+    assert run.steps == 2
+    assert json.loads((tmp_path / "run" / "recipe.json").read_text())["pretrain"]["batch_size"] == res.n_patches
+
+
+def test_a_corpus_that_keeps_no_patch_is_an_error_at_build_time(archive, tmp_path, capsys):
+    from warmstart.cli import main
+
+    out = tmp_path / "c.zarr"
+    assert main(["-q", "corpus", "build", str(archive), "-o", str(out), "--patch-size", "32",
+                 "--set", "filters.min_std=50"]) == 1
+    err = capsys.readouterr().err
+    assert "no patch was kept" in err and "low variance" in err
+    assert not (out / "manifest.json").exists()

@@ -314,6 +314,13 @@ def build_corpus(
     writer.finish_index()
     records = writer.records()
     manifest = build_manifest(build, records, s, writer.patches.shape)
+    if manifest["patches"]["count"] == 0:  # an empty corpus is never finished: nothing could train on it
+        c = manifest["counts"]
+        raise CorpusError(
+            f"{out}: no patch was kept from {c['sources_ok']} usable source(s) ({c['planned']} planned; dropped: "
+            f"{c['low_variance']} low variance, {c['background']} background, {c['duplicate']} near-duplicate, "
+            f"{c['nonfinite']} non-finite; {c['sources_failed']} source(s) skipped): relax corpus.filters or sample "
+            "more (corpus.sampling), then rerun")
     write_json(out / "manifest.json", manifest)  # last: its presence marks the store finished
     shutil.rmtree(staging, ignore_errors=True)
     if report:

@@ -6,6 +6,7 @@ count, so a resumed run sees exactly the batches and views the uninterrupted run
 """
 from __future__ import annotations
 
+import dataclasses
 import math
 import os
 import time
@@ -244,8 +245,17 @@ def pretrain(corpus: str | os.PathLike[str], out: str | os.PathLike[str], settin
     ds._world = trainer.world_size
     steps_per_epoch = len(ds)
     if steps_per_epoch < 1:
-        raise PretrainError(f"{corpus}: {len(ds.source_of)} patches make no batch of {s.batch_size} per rank; "
-                            "lower pretrain.batch_size")
+        # A tiny corpus (a CI smoke test, a first try) trains with the largest batch it fills.
+        n = len(ds.source_of)
+        fits = n // (trainer.world_size * max(1, ds.num_workers))
+        if fits < 2:
+            raise PretrainError(f"{corpus}: {n} patches are too few to pretrain on (a batch needs at least 2 per rank "
+                                "and loader worker); sample more patches when building the corpus")
+        warnings.warn(f"{corpus}: {n} patches make no batch of {s.batch_size} per rank; training with batches of "
+                      f"{fits} instead (recorded in the run's recipe.json)", stacklevel=2)
+        s = dataclasses.replace(s, batch_size=fits)
+        ds.batch_size = fits
+        steps_per_epoch = len(ds)
     total = s.max_steps if s.max_steps is not None else s.epochs * steps_per_epoch
     trainer.fit_loop.epoch_loop.max_steps = total
     trainer.fit_loop.max_epochs = math.ceil(total / steps_per_epoch)
