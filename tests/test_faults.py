@@ -363,3 +363,96 @@ def test_a_corpus_that_keeps_no_patch_is_an_error_at_build_time(archive, tmp_pat
     err = capsys.readouterr().err
     assert "no patch was kept" in err and "low variance" in err
     assert not (out / "manifest.json").exists()
+
+
+# --- odd names, bad values, leftovers --------------------------------------------------------
+def test_a_file_name_that_is_not_utf8_builds_shows_and_reports(tmp_path, capsys):
+    import os
+
+    from warmstart.cli import main
+
+    root = tmp_path / "archive"
+    root.mkdir()
+    with open(os.fsencode(root) + b"/caf\xe9.npy", "wb") as fh:  # Latin-1 bytes, as an old share may hold
+        np.save(fh, textured(shape=(16, 64, 64)))
+    out = tmp_path / "c.zarr"
+    assert main(["-q", "corpus", "build", str(root), "-o", str(out), "--patch-size", "32"]) == 0
+    assert main(["-q", "corpus", "show", str(out)]) == 0
+    text = capsys.readouterr().out
+    assert "caf" in text and "Traceback" not in text
+    assert "caf\ufffd.npy" in (out / "report" / "summary.md").read_text()
+
+
+@pytest.mark.parametrize("override, message", [
+    ("filters.min_std=nan", "must be a finite number"),
+    ("filters.min_std=inf", "must be a finite number"),
+    ("sampling.seed=-1", "sampling.seed must be >= 0"),
+])
+def test_non_finite_numbers_and_negative_seeds_are_refused_before_anything_is_written(archive, tmp_path, override,
+                                                                                      message, capsys):
+    from warmstart.cli import main
+
+    out = tmp_path / "c.zarr"
+    assert main(["-q", "corpus", "build", str(archive), "-o", str(out), "--set", override]) == 1
+    assert message in capsys.readouterr().err and not out.exists()
+
+
+def test_per_source_warnings_are_printed(tmp_path, capsys):
+    from warmstart.cli import main
+
+    root = tmp_path / "archive"
+    root.mkdir()
+    np.save(root / "v.npy", textured(shape=(16, 64, 64)))
+    out = tmp_path / "c.zarr"
+    # a 0.25 µm target on a 1 µm volume: upsampling 4x, which the build notes for the source
+    assert main(["-q", "corpus", "build", str(root), "-o", str(out), "--patch-size", "32", "--target-voxel-um", "0.25",
+                 "--set", "read.voxel_size_um=[1.0, 1.0, 1.0]", "--no-report"]) == 0
+    assert "warning: v.npy: upsampling" in capsys.readouterr().out
+
+
+def test_exported_files_follow_the_users_umask(tmp_path):
+    import os
+    import stat
+
+    from warmstart.export.file import write_encoder_file
+
+    old = os.umask(0o022)
+    try:
+        path = write_encoder_file(tmp_path / "e.safetensors", {"w": np.zeros(2, np.float32)}, {"format": "x"})
+    finally:
+        os.umask(old)
+    assert stat.S_IMODE(path.stat().st_mode) == 0o644
+
+
+@pytest.mark.slow
+def test_worker_processes_exit_when_the_build_is_killed(tmp_path):
+    import os
+    import signal
+    import time
+
+    psutil = pytest.importorskip("psutil")
+    root = tmp_path / "archive"
+    root.mkdir()
+    for i in range(8):
+        np.save(root / f"v{i}.npy", textured(shape=(160, 384, 384), seed=i))
+    proc = subprocess.Popen([sys.executable, "-m", "warmstart", "-q", "corpus", "build", str(root), "-o",
+                             str(tmp_path / "c.zarr"), "--workers", "2", "--patch-size", "32", "--set",
+                             "sampling.slice_stride=1", "--set", "sampling.max_per_source=100000"])
+    def ours():  # every process the build started: its children and the forkserver's
+        return [p for p in psutil.process_iter(["cmdline"]) if p.pid != os.getpid() and
+                any("multiprocessing" in c for c in (p.info["cmdline"] or [])) and
+                str(tmp_path) not in " ".join(p.info["cmdline"] or [])]
+
+    before = {p.pid for p in ours()}
+    main = psutil.Process(proc.pid)
+    for _ in range(600):  # wait until the workers are busy
+        kids = [p for p in ours() if p.pid not in before]
+        if len(kids) >= 4:  # resource tracker, forkserver, two workers
+            break
+        time.sleep(0.05)
+    assert len(kids) >= 3, "the build started no worker processes"
+    assert main.is_running()
+    proc.send_signal(signal.SIGKILL)
+    proc.wait()
+    gone, alive = psutil.wait_procs(kids, timeout=20)
+    assert not alive, f"workers still running after their parent was killed: {[p.pid for p in alive]}"

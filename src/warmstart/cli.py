@@ -272,10 +272,22 @@ def cmd_corpus_build(args: argparse.Namespace) -> int:
               + (f" ({result.resumed} sources kept from an interrupted run)" if result.resumed else ""))
         for name, reason in result.failed:
             print(f"skipped {name}: {reason}")
+        _print_source_warnings(result.path)
         if not args.no_report:
             print(f"report: {result.path / 'report' / 'summary.md'}")
     _caution_if_clinical(result.path)
     return result.exit_code
+
+
+def _print_source_warnings(path: Any) -> None:
+    """Per-source warnings of a finished store (upsampling, missing chunks, overflow, ...)."""
+    from pathlib import Path
+
+    m = Path(path) / "manifest.json"
+    if m.exists():
+        for e in json.loads(m.read_text()).get("sources", []):
+            for w in e.get("warnings") or []:
+                print(f"warning: {e['name']}: {w}")
 
 
 def _caution_if_clinical(path: Any) -> None:
@@ -487,6 +499,12 @@ def main(argv: Sequence[str] | None = None) -> int:
     """Run the command line; returns the exit status."""
     args = build_parser().parse_args(argv)
     import logging
+
+    # File names that are not valid UTF-8 (kept by Python as surrogate escapes) print as escapes
+    # instead of stopping the command.
+    for stream in (sys.stdout, sys.stderr):
+        if hasattr(stream, "reconfigure"):
+            stream.reconfigure(errors="backslashreplace")
 
     from .errors import WarmstartError
 

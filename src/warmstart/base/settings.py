@@ -9,6 +9,7 @@ description of each setting.
 from __future__ import annotations
 
 import dataclasses
+import math
 import types
 import typing
 from dataclasses import fields
@@ -43,6 +44,8 @@ def _check_type(value: Any, hint: Any, key: str) -> Any:
     if hint is float:
         if isinstance(value, bool) or not isinstance(value, (int, float)):
             raise RecipeError(f"{key} must be a number, got {value!r}")
+        if not math.isfinite(value):
+            raise RecipeError(f"{key} must be a finite number, got {value!r}")
         return float(value)
     if hint is int:
         if isinstance(value, bool) or not isinstance(value, int):
@@ -110,6 +113,8 @@ def settings_from_dict(cls: Any, d: Mapping[str, Any], where: str) -> Any:
             kwargs[name] = settings_from_dict(hint, value, f"{where}.{name}")
         else:
             kwargs[name] = _check_type(value, hint, f"{where}.{name}")
+            if name.endswith("seed") and isinstance(kwargs[name], int) and kwargs[name] < 0:
+                raise RecipeError(f"{where}.{name} must be >= 0, got {kwargs[name]}")
     try:
         return cls(**kwargs)
     except RecipeError as err:

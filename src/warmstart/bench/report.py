@@ -164,7 +164,7 @@ def write_report(out: Path, result: dict[str, Any], pairs: Sequence[Any]) -> dic
     paths = {"json": str(out / "bench.json"), "md": str(out / "bench.md"), "html": str(out / "bench.html")}
     write_json(out / "bench.json", {**result, "report": paths})
     md = markdown(result)
-    (out / "bench.md").write_text(md)
+    (out / "bench.md").write_text(md, encoding="utf-8", errors="backslashreplace")
     body = "".join(f"<h2>{html.escape(t)}</h2><img src='data:image/png;base64,{b}'>" for t, b in _plots(result, pairs, out))
     (out / "bench.html").write_text(
         "<!doctype html><meta charset='utf-8'><title>warmstart bench</title>"

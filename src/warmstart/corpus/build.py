@@ -320,7 +320,8 @@ def build_corpus(
             f"{out}: no patch was kept from {c['sources_ok']} usable source(s) ({c['planned']} planned; dropped: "
             f"{c['low_variance']} low variance, {c['background']} background, {c['duplicate']} near-duplicate, "
             f"{c['nonfinite']} non-finite; {c['sources_failed']} source(s) skipped): relax corpus.filters or sample "
-            "more (corpus.sampling), then rerun")
+            "more (corpus.sampling), then rerun"
+            + "".join([f"\n  skipped {r['name']}: {r['reason']}" for r in records if r["status"] != "ok"][:5]))
     write_json(out / "manifest.json", manifest)  # last: its presence marks the store finished
     shutil.rmtree(staging, ignore_errors=True)
     if report:
@@ -372,6 +373,43 @@ def _staged_parts(path: str, dtype: np.dtype, shape: tuple[int, int, int], per_p
             yield np.frombuffer(buf, dtype=dtype).reshape((-1,) + shape)
 
 
+def _die_with_parent(main_pid: int) -> None:
+    """In a worker process: exit when the build's main process dies, even by SIGKILL.
+
+    Workers are forked by the forkserver, not by the main process, so Linux's PR_SET_PDEATHSIG
+    (which this sets too) only covers the forkserver; a daemon thread watches the main process
+    and, once it is gone, ends the forkserver (its other workers then get their signal) and itself.
+    """
+    import ctypes
+    import signal
+    import sys
+    import threading
+
+    if sys.platform.startswith("linux"):
+        try:
+            ctypes.CDLL("libc.so.6", use_errno=True).prctl(1, int(signal.SIGTERM))  # 1 = PR_SET_PDEATHSIG
+        except OSError:
+            pass
+
+    def watch() -> None:
+        while True:
+            time.sleep(0.5)
+            try:
+                os.kill(main_pid, 0)
+            except ProcessLookupError:
+                parent = os.getppid()
+                if parent not in (1, main_pid):
+                    try:
+                        os.kill(parent, signal.SIGTERM)
+                    except OSError:
+                        pass
+                os._exit(1)
+            except PermissionError:
+                pass
+
+    threading.Thread(target=watch, daemon=True, name="warmstart-parent-watch").start()
+
+
 def _run_parallel(jobs: list[dict[str, Any]], workers: int, commit: Any) -> None:
     """Run jobs in worker processes; commit results in job order, keeping few in flight."""
     # Not fork: zarr runs an event-loop thread in this process, and forking a threaded process can
@@ -382,7 +420,8 @@ def _run_parallel(jobs: list[dict[str, Any]], workers: int, commit: Any) -> None
     ready: dict[int, dict[str, Any]] = {}
     nxt = 0  # next job to submit
     want = 0  # next job to commit
-    with ProcessPoolExecutor(max_workers=workers, mp_context=ctx) as pool:
+    with ProcessPoolExecutor(max_workers=workers, mp_context=ctx, initializer=_die_with_parent,
+                             initargs=(os.getpid(),)) as pool:
         while want < len(jobs):
             while nxt < len(jobs) and len(pending) + len(ready) < 2 * workers:
                 pending[nxt] = pool.submit(process_source, jobs[nxt])

@@ -17,7 +17,7 @@ import numpy as np
 from ..base.atomic import write_json
 from .store import open_corpus
 
-__all__ = ["write_report", "montage", "summary_rows", "SUMMARY_COLUMNS", "summary_cells"]
+__all__ = ["write_report", "montage", "summary_rows", "shown_name", "SUMMARY_COLUMNS", "summary_cells"]
 
 # The per-source table, with the same headings in ``corpus show`` and in ``report/summary.md``.
 SUMMARY_COLUMNS = ("#", "source", "format", "modality", "shape (ZYX)", "voxel µm (ZYX)", "scheme", "planned", "kept",
@@ -62,16 +62,26 @@ def _save_histograms(path: Path, entry: dict[str, Any], stats: dict[str, Any]) -
     axes[1].stairs(stats["counts"], edges, fill=True, color="tab:blue")
     ref = entry["reference"]
     axes[1].set(title=f"normalized patches ({ref['scheme']})", xlabel="normalized value", ylabel="pixels")
-    fig.suptitle(entry["name"], fontsize=9)
+    fig.suptitle(shown_name(entry["name"]), fontsize=9)
     fig.savefig(path, dpi=80)
     plt.close(fig)
+
+
+def shown_name(name: str) -> str:
+    """A source name as people see it: bytes that are not UTF-8 (kept by Python as surrogate
+    escapes) become the replacement character, which fonts, terminals and Markdown can show.
+
+    >>> shown_name("caf\\udce9.npy") == "caf\\ufffd.npy"
+    True
+    """
+    return name.encode("utf-8", "surrogateescape").decode("utf-8", "replace")
 
 
 def summary_rows(manifest: dict[str, Any]) -> list[dict[str, Any]]:
     """One row per source: name, format, shape, voxel size, scheme, counts per rule, status."""
     rows = []
     for e in manifest["sources"]:
-        row = {"position": e["position"], "name": e["name"], "format": e["format"], "status": e["status"]}
+        row = {"position": e["position"], "name": shown_name(e["name"]), "format": e["format"], "status": e["status"]}
         if e["status"] == "ok":
             row.update(shape=e["shape"], dtype=e["dtype"], voxel_size_um=e["voxel_size_um"], modality=e.get("modality"),
                        scheme=e["reference"]["scheme"], **e["counts"])
@@ -138,7 +148,7 @@ def write_report(corpus: str | os.PathLike[str], *, patches_per_source: int = 64
     summary = {"patches": m["patches"], "statistics": {k: v for k, v in m["statistics"].items() if k != "histogram"},
                "counts": m["counts"], "clinical": m["clinical"], "sources": rows}
     write_json(out / "summary.json", summary)
-    (out / "summary.md").write_text(_markdown(m, rows))
+    (out / "summary.md").write_text(_markdown(m, rows), encoding="utf-8", errors="backslashreplace")
     return out
 
 

@@ -357,7 +357,7 @@ def source_seed(seed: int, name: str) -> int:
     the same patches in a full build, a shard or a resumed build."""
     import hashlib
 
-    return int.from_bytes(hashlib.sha256(f"{seed}:{name}".encode()).digest()[:8], "little")
+    return int.from_bytes(hashlib.sha256(f"{seed}:{name}".encode("utf-8", "surrogateescape")).digest()[:8], "little")
 
 
 def background_level(reference: Any, settings: FilterSettings) -> float:

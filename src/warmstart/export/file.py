@@ -124,6 +124,9 @@ def write_encoder_file(path: str | os.PathLike[str], arrays: Mapping[str, np.nda
     tmp = path.with_name(f".{path.name}.partial")
     try:
         save_file(arrays, str(tmp), metadata={METADATA_KEY: json.dumps(full, allow_nan=False)})
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(tmp, 0o666 & ~umask)  # the user's usual permissions, not the writer's private 0600
         os.replace(tmp, path)
     except BaseException as err:
         tmp.unlink(missing_ok=True)  # never leave a partial file behind
