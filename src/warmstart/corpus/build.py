@@ -23,7 +23,7 @@ import numpy as np
 
 from .. import __version__
 from ..base.lock import locks_output
-from ..errors import CorpusError, VolumeReadError, WarmstartError
+from ..errors import CorpusError, VolumeReadError
 from ..intensity import fit_intensity
 from ..volumes import Candidate, describe_failure, discover, open_volume
 from .manifest import build_manifest
@@ -140,10 +140,8 @@ def process_source(job: dict[str, Any]) -> dict[str, Any]:
             rec["warnings"] = notes + [str(w.message) for w in caught]
             if ref.stats["n_nonfinite"]:
                 rec["warnings"].append(f"{ref.stats['n_nonfinite']} NaN/Inf voxels in the intensity sample (excluded)")
-    except (WarmstartError, OSError, MemoryError) as err:
-        rec.update(status="failed", reason=describe_failure(err))
     except Exception as err:  # a reader library's unexpected error must not stop the whole build
-        rec.update(status="failed", reason=f"{cand.path}: {type(err).__name__}: {err}")
+        rec.update(status="failed", reason=describe_failure(err, cand.path))
     if rec["status"] != "ok":
         staging.unlink(missing_ok=True)
         rec["columns"] = {c: np.empty(0) for c in INDEX_COLUMNS}

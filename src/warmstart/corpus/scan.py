@@ -77,9 +77,7 @@ def scan_archive(archive: str | os.PathLike[str], settings: CorpusSettings | Non
                         raise WarmstartError(f"{c.path}: smaller than one {s.sampling.patch_size} px patch")
             row["status"] = "ok"
             row["warnings"] = [str(w.message) for w in caught]
-        except (WarmstartError, OSError) as err:
-            row.update(status="failed", reason=describe_failure(err))
-        except Exception as err:  # report, never crash a scan on one odd file
-            row.update(status="failed", reason=f"{c.path}: {type(err).__name__}: {err}")
+        except Exception as err:  # report, never crash a scan on one odd file (same words as the build)
+            row.update(status="failed", reason=describe_failure(err, c.path))
         result.rows.append(row)
     return result

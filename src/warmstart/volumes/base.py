@@ -13,7 +13,7 @@ from typing import Any, Protocol, Sequence
 
 import numpy as np
 
-from ..errors import VolumeReadError
+from ..errors import VolumeReadError, WarmstartError
 
 __all__ = [
     "Volume",
@@ -173,8 +173,14 @@ class Volume:
         reg = _normalize_region(region, self.shape)
         try:
             out = self._backend.read(reg)
-        except (OSError, ValueError, KeyError, RuntimeError, EOFError) as err:
-            raise VolumeReadError(f"{self.source.path}: cannot read region {reg}: {err}") from err
+        except WarmstartError:
+            raise
+        except MemoryError as err:
+            raise VolumeReadError(f"{self.source.path}: region {reg} is too large to read with the memory available") from err
+        except Exception as err:  # the reader library's error on damaged data: in the user's words
+            from .failures import describe_failure
+
+            raise VolumeReadError(describe_failure(err, self.source.path)) from err
         want = tuple(s.stop - s.start for s in reg)
         if out.shape != want:
             raise VolumeReadError(

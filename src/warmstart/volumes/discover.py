@@ -22,6 +22,7 @@ from typing import Sequence
 from ..errors import SourceNotFoundError, UnsupportedFormatError, VolumeReadError, WarmstartError
 from . import dicom, mrc, npy, slices, tiff
 from .base import Volume
+from .failures import describe_failure
 from .zarr import is_zarr_path, open_zarr
 
 __all__ = ["Candidate", "Ignored", "discover", "open_volume"]
@@ -270,6 +271,24 @@ def open_volume(
             raise VolumeReadError(f"{path}: folder holds {len(cands)} sources; open them one by one (see discover)")
         cand = cands[0]
     fmt = cand.format if cand else _format_of_path(path)
+    try:
+        vol = _open_as(fmt, path, cand, rgb, channel, target_voxel_um)
+    except WarmstartError:
+        raise
+    except Exception as err:  # a reader library's own error on a damaged file: in the user's words
+        raise VolumeReadError(describe_failure(err, path)) from err
+    if voxel_size_um is not None:
+        if len(voxel_size_um) != 3:
+            raise VolumeReadError(f"{path}: voxel_size_um override needs 3 values (Z, Y, X), got {voxel_size_um!r}")
+        vol.voxel_size_um = tuple(o if o is not None else v for o, v in zip(voxel_size_um, vol.voxel_size_um))
+        vol.meta["voxel_size_from"] = "user override"
+    if cand is not None:
+        vol.meta["name"] = cand.name
+    return vol
+
+
+def _open_as(fmt: str, path: str, cand: Candidate | None, rgb: str, channel: int | None,
+             target_voxel_um: float | None) -> Volume:
     vol: Volume
     if fmt == "tiff":
         vol = tiff.open_tiff(path, rgb=rgb, channel=channel)
@@ -287,18 +306,4 @@ def open_volume(
         vol = slices.open_slices(files, folder=path if os.path.isdir(path) else None, rgb=rgb)
     else:  # pragma: no cover - formats are closed above
         raise UnsupportedFormatError(f"{path}: unknown format {fmt!r}")
-    if voxel_size_um is not None:
-        if len(voxel_size_um) != 3:
-            raise VolumeReadError(f"{path}: voxel_size_um override needs 3 values (Z, Y, X), got {voxel_size_um!r}")
-        vol.voxel_size_um = tuple(o if o is not None else v for o, v in zip(voxel_size_um, vol.voxel_size_um))
-        vol.meta["voxel_size_from"] = "user override"
-    if cand is not None:
-        vol.meta["name"] = cand.name
     return vol
-
-
-def describe_failure(err: BaseException) -> str:
-    """One line for a scan table or build summary: the message without the exception class."""
-    if isinstance(err, WarmstartError):
-        return str(err)
-    return f"{type(err).__name__}: {err}"
