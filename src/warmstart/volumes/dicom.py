@@ -56,19 +56,23 @@ class _SliceHeader:
 
 
 def _read_header(path: str) -> _SliceHeader | None:
+    """The header of one DICOM image file, or None when it is not one or cannot be parsed (pydicom
+    raises many kinds on damaged headers: unknown value representations, values that are not
+    numbers, ...); the file is then listed as ignored, never read as a slice."""
     import pydicom
-    from pydicom.errors import InvalidDicomError
 
     try:
         ds = pydicom.dcmread(path, stop_before_pixels=True)
-    except (InvalidDicomError, OSError, EOFError, ValueError, KeyError, TypeError, AttributeError):
+        if "Rows" not in ds or "Columns" not in ds:
+            return None
+        pos = tuple(float(v) for v in ds.ImagePositionPatient) if "ImagePositionPatient" in ds else None
+        ori = tuple(float(v) for v in ds.ImageOrientationPatient) if "ImageOrientationPatient" in ds else None
+        if (pos is not None and len(pos) != 3) or (ori is not None and len(ori) != 6):
+            return None
+        return _SliceHeader(path, str(ds.get("SeriesInstanceUID", "")), pos, ori,
+                            int(ds.get("InstanceNumber", 0) or 0), int(ds.Rows), int(ds.Columns), ds)
+    except Exception:
         return None
-    if "Rows" not in ds or "Columns" not in ds:
-        return None
-    pos = tuple(float(v) for v in ds.ImagePositionPatient) if "ImagePositionPatient" in ds else None
-    ori = tuple(float(v) for v in ds.ImageOrientationPatient) if "ImageOrientationPatient" in ds else None
-    return _SliceHeader(path, str(ds.get("SeriesInstanceUID", "")), pos, ori,
-                        int(ds.get("InstanceNumber", 0) or 0), int(ds.Rows), int(ds.Columns), ds)
 
 
 def dicom_series(files: Sequence[str]) -> dict[str, list[_SliceHeader]]:

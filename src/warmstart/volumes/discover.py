@@ -146,7 +146,8 @@ def _classify_folder(folder: Path, root: Path, names: list[str]) -> tuple[list[C
             name = rel(folder) if len(series) == 1 else f"{rel(folder)}#{uid}"
             found.append(Candidate(str(folder), "dicom", name, tuple(h.path for h in headers), uid))
         kept = {h.path for hs in series.values() for h in hs}
-        ignored += [Ignored(p, "DICOM file without image data") for p in dicoms if p not in kept]
+        ignored += [Ignored(p, "DICOM file without readable image data (not an image, or a damaged header)") for p in dicoms
+                    if p not in kept]
     return found, ignored
 
 
