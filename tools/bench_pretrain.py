@@ -9,7 +9,11 @@
 
 Also prints the end-to-end figure of ``warmstart.pretrain.loop.pretrain`` (Lightning included).
 
+With ``--layouts``: only the bare step, in the default and in the channels-last memory layout
+(what pretraining and the benchmark use), interleaved, and the speed-up.
+
 Usage: python tools/bench_pretrain.py [--patch 64] [--batch 128] [--steps 12] [--rounds 5] [--encoder resnet_narrow]
+                                      [--layouts]
 """
 from __future__ import annotations
 
@@ -35,12 +39,15 @@ def make_corpus(root: Path, patch: int) -> Path:
     return build_corpus(root / "archive", root / "corpus.zarr", s, report=False, progress=False).path
 
 
-def model_and_opt(encoder: str, channels: int):
+def model_and_opt(encoder: str, channels: int, channels_last: bool = False):
     from warmstart.encoders import build_encoder
+    from warmstart.encoders.memory import module_channels_last
     from warmstart.pretrain.methods import build_method
 
     torch.manual_seed(0)
     method = build_method("simclr", build_encoder(encoder, in_channels=channels))
+    if channels_last:
+        module_channels_last(method)
     opt = torch.optim.AdamW([p for p in method.parameters() if p.requires_grad], lr=1e-3)
     return method, opt
 
@@ -125,6 +132,31 @@ def reference(corpus: Path, batch: int, workers: int, patch: int):
             yield v1, v2
 
 
+def layouts() -> None:
+    """Bare step, default vs channels-last layout, interleaved rounds (medians)."""
+    import sys
+
+    args = sys.argv
+    get = lambda name, d: type(d)(args[args.index(name) + 1]) if name in args else d  # noqa: E731
+    batch, patch, steps, rounds = get("--batch", 128), get("--patch", 64), get("--steps", 12), get("--rounds", 5)
+    encoder = get("--encoder", "resnet_narrow")
+    from warmstart.encoders.memory import to_channels_last
+
+    x = [torch.randn(batch, 1, patch, patch) for _ in range(2)]
+    feeds = {"default": iter(lambda: (x[0], x[1]), None),
+             "channels_last": iter(lambda: (to_channels_last(x[0]), to_channels_last(x[1])), None)}
+    models = {"default": model_and_opt(encoder, 1), "channels_last": model_and_opt(encoder, 1, channels_last=True)}
+    runs: dict[str, list[float]] = {k: [] for k in feeds}
+    for _ in range(rounds):
+        for k in feeds:
+            runs[k].append(timed(feeds[k], *models[k], steps))
+    fig = {k: float(np.median(v)) for k, v in runs.items()}
+    print(f"bare SimCLR step, {encoder}, batch {batch} of {patch} px, {torch.get_num_threads()} threads:")
+    for k, v in fig.items():
+        print(f"  {k:14s} {v:8.1f} pairs/s (median of {rounds}; {min(runs[k]):.0f}-{max(runs[k]):.0f})")
+    print(f"  channels_last / default = {fig['channels_last'] / fig['default']:.2f}")
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--patch", type=int, default=64)
@@ -133,8 +165,12 @@ def main() -> None:
     ap.add_argument("--rounds", type=int, default=5)
     ap.add_argument("--workers", type=int, default=2)
     ap.add_argument("--encoder", default="resnet_narrow")
+    ap.add_argument("--layouts", action="store_true", help="compare memory layouts of the bare step only")
     args = ap.parse_args()
     torch.set_num_threads(torch.get_num_threads())
+    if args.layouts:
+        layouts()
+        return
     root = Path(tempfile.mkdtemp(prefix="warmstart-bench-pre-"))
     try:
         corpus = make_corpus(root, args.patch)

@@ -61,6 +61,9 @@ class BenchSettings:
         CPU threads torch uses for each fine-tuning run (default: torch's choice). Not to be
         confused with ``corpus.workers`` (processes that build a corpus) or
         ``pretrain.num_workers`` (data-loader processes that feed pretraining).
+    channels_last : bool
+        Fine-tune in channels-last memory layout (faster on a CPU, the same results up to float
+        rounding), every contender alike.
     """
 
     sizes: list[int] = field(default_factory=lambda: [1, 4, 16])
@@ -86,6 +89,7 @@ class BenchSettings:
     decoder_norm: str = "batch"
     device: str = "auto"
     threads: int | None = None
+    channels_last: bool = True
 
     def __post_init__(self) -> None:
         if not self.sizes or any(int(n) < 1 for n in self.sizes):

@@ -9,6 +9,7 @@ import numpy as np
 import torch
 import torch.nn.functional as F
 
+from ..encoders.memory import module_channels_last, to_channels_last
 from .data import Split
 from .settings import BenchSettings
 from .stats import curve_area, dice_counts, dice_from_counts, epochs_to_reach
@@ -117,6 +118,8 @@ def fine_tune(make_model: Callable[[], torch.nn.Module], images: Sequence[np.nda
     """
     torch.manual_seed(seed)
     model = make_model().to(device)
+    if s.channels_last:
+        module_channels_last(model)
     # Batch-norm statistics: a plain average over the fine-tuning batches (momentum None), from
     # zero for every contender. With the usual running average (momentum 0.1) the statistics
     # after a few steps are mostly their initial values, so early validation would measure that
@@ -144,7 +147,8 @@ def fine_tune(make_model: Callable[[], torch.nn.Module], images: Sequence[np.nda
         for k in range(s.steps_per_epoch):
             step = epoch * s.steps_per_epoch + k
             x, y = _batch(images, labels, split, plan[step], s.patch_size)
-            loss = _loss(model(x.to(device)), y.to(device), classes, s.ignore_label)
+            x = x.to(device)
+            loss = _loss(model(to_channels_last(x) if s.channels_last else x), y.to(device), classes, s.ignore_label)
             opt.zero_grad(set_to_none=True)
             loss.backward()
             opt.step()

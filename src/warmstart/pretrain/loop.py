@@ -24,6 +24,7 @@ from ..base.atomic import write_json
 from ..base.lock import locks_output
 from ..errors import PretrainError
 from ..encoders import build_encoder
+from ..encoders.memory import module_channels_last, to_channels_last
 from ..run_folder import CHECKPOINTS, CORPUS_MANIFEST, HISTORY, LIBRARY_LOGS, RECIPE, SUMMARY, write_networks
 from .augment import apply_view, draw_params
 from .data import CorpusBatches
@@ -51,6 +52,8 @@ class PretrainModule(pl.LightningModule):
         self.s = s
         enc = build_encoder(s.encoder, **{"in_channels": in_channels, **s.encoder_params})
         self.method = build_method(s.method, enc, **s.method_params)
+        if s.channels_last:
+            module_channels_last(self.method)
         self.view1 = s.view1
         self.view2 = s.view2 if s.view2 is not None else s.view1
         self.total_steps = int(total_steps)
@@ -72,7 +75,10 @@ class PretrainModule(pl.LightningModule):
             p2 = draw_params(b, size, self.view2, g, batch.device)
             x2 = apply_view(batch.float(), p2, g)
             x1, x2 = self.standardized(x1), self.standardized(x2)
-        loss, out = self.method.loss(x1, x2, Views(self.standardized(batch.float()), p1, p2, g))
+            original = self.standardized(batch.float())
+            if self.s.channels_last:
+                x1, x2, original = to_channels_last(x1), to_channels_last(x2), to_channels_last(original)
+        loss, out = self.method.loss(x1, x2, Views(original, p1, p2, g))
         if not bool(torch.isfinite(loss)):
             raise PretrainError(
                 f"loss is {float(loss)} at step {step}: training stopped; the last good checkpoint is kept "

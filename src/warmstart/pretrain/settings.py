@@ -130,6 +130,10 @@ class PretrainSettings:
         Feed the encoder ``(normalized - mean) / std`` with the corpus's mean and std (after the
         views are drawn). The export records the two numbers, and ``prepare`` applies them to new
         data, so downstream inputs match what the encoder saw.
+    channels_last : bool
+        Train in channels-last memory layout (1.2-1.5x faster steps for the U-Net encoder on a CPU,
+        no change for the narrow ResNet; the same results up to float rounding; see
+        :mod:`warmstart.encoders.memory`).
     probe : str, optional
         A labelled probe set (``.npz`` with ``patches`` and integer ``labels``); its leave-one-out
         kNN accuracy on the encoder's embeddings is logged after every epoch (``knn`` in history).
@@ -162,6 +166,7 @@ class PretrainSettings:
     source_weights: dict[str, Any] = field(default_factory=dict)
     probe: str | None = None
     standardize: bool = True
+    channels_last: bool = True
 
     def __post_init__(self) -> None:
         require_positive(self, "pretrain", "batch_size", "epochs", "checkpoint_every", "num_nodes", "max_steps")
