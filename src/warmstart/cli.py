@@ -304,17 +304,17 @@ def cmd_corpus_show(args: argparse.Namespace) -> int:
 
     store = open_corpus(args.corpus)
     m = store.manifest
-    problems = store.verify() if args.verify else []
-    damaged = [p for p in problems if p.endswith("(damaged)")]
+    damaged = store.verify() if args.verify else []
+    unchecked = store.unchecked_sources() if args.verify else []
     if damaged:
-        for line in problems:
+        for line in damaged:
             print(f"warmstart: error: {store.path}: {line}", file=sys.stderr)
         return EXIT_ERROR
     report = None if args.no_report else write_report(store.path, progress=not args.quiet)
     if args.json:
         _print_json({"patches": m["patches"], "counts": m["counts"], "statistics": {k: v for k, v in m["statistics"].items() if k != "histogram"},
                      "sources": summary_rows(m), "report": None if report is None else str(report),
-                     **({"verify": problems} if args.verify else {})})
+                     **({"verify": {"damaged": damaged, "unchecked": unchecked}} if args.verify else {})})
     else:
         st, c = m["statistics"], m["counts"]
         print(f"{store.path}: {m['patches']['count']} patches {m['patches']['shape']} ({m['patches']['encoding']['dtype']}), "
@@ -329,8 +329,10 @@ def cmd_corpus_show(args: argparse.Namespace) -> int:
         if report is not None:
             print(f"report: {report / 'summary.md'}")
         if args.verify:
-            print("\n".join(f"note: {p}" for p in problems) if problems else
-                  f"verified: the patches of all {c['sources_ok']} sources match their recorded sha256")
+            for name in unchecked:
+                print(f"note: {name}: no checksum recorded (store built by an older warmstart): unchecked")
+            print(f"verified: the patches of {c['sources_ok'] - len(unchecked)} of {c['sources_ok']} sources match "
+                  "their recorded sha256")
     _caution_if_clinical(store.path)
     return 0
 
@@ -403,6 +405,7 @@ def cmd_export(args: argparse.Namespace) -> int:
 def cmd_inspect(args: argparse.Namespace) -> int:
     from pathlib import Path
 
+    from .errors import ExportError
     from .export.card import model_card, summary_text
     from .export.file import read_encoder_file, read_manifest
 
@@ -411,15 +414,11 @@ def cmd_inspect(args: argparse.Namespace) -> int:
     if args.expect_sha256:
         got = (m.get("digest") or {}).get("sha256")
         if got != args.expect_sha256.strip().lower():
-            from .errors import ExportError
-
             raise ExportError(f"{args.file}: fingerprint {got} is not the expected {args.expect_sha256}: this is not the "
                               "file its publisher released (or it was changed since)")
     if args.card:
         card = Path(args.card)
         if card.is_dir():
-            from .errors import ExportError
-
             raise ExportError(f"{card}: is a folder; give the card's file name, e.g. {card / 'encoder-card.md'}")
         card.parent.mkdir(parents=True, exist_ok=True)
         card.write_text(model_card(m, Path(args.file).stem))

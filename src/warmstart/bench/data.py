@@ -98,8 +98,13 @@ def read_pairs(labels: str | os.PathLike[str]) -> list[tuple[str, Path, Path]]:
     return [(k, a[k], b[k]) for k in sorted(a)]
 
 
-_IMAGE_SUFFIXES = (".ome.tiff", ".ome.tif", ".ome.zarr", ".tiff", ".tif", ".png", ".zarr", ".mrc", ".map", ".rec",
-                   ".st", ".npy", ".dcm")
+def _image_suffixes() -> tuple[str, ...]:
+    """Every suffix the readers take, longest first (``.ome.tif`` before ``.tif``)."""
+    from ..volumes import dicom, mrc, npy, slices, tiff
+
+    known = {".ome.tiff", ".ome.tif", ".ome.zarr", ".zarr", *tiff.SUFFIXES, *slices.SUFFIXES, *mrc.SUFFIXES,
+             *npy.SUFFIXES, *dicom.SUFFIXES}
+    return tuple(sorted(known, key=len, reverse=True))
 
 
 def image_stem(name: str) -> str:
@@ -109,7 +114,7 @@ def image_stem(name: str) -> str:
     ('scan.v1', 'scan.v2', 'slices')
     """
     low = name.lower()
-    for suffix in _IMAGE_SUFFIXES:
+    for suffix in _image_suffixes():
         if low.endswith(suffix):
             return name[: len(name) - len(suffix)]
     return name

@@ -22,6 +22,7 @@ from typing import Any
 import numpy as np
 
 from .. import __version__
+from ..base.atomic import write_json
 from ..base.lock import locks_output
 from ..errors import CorpusError, VolumeReadError
 from ..intensity import fit_intensity
@@ -29,7 +30,6 @@ from ..volumes import Candidate, describe_failure, discover, open_volume
 from .manifest import build_manifest
 from .sampling import PatchFilter, background_level, downscale_factors, extract_patches, plan_patches, source_seed
 from .settings import CorpusSettings
-from ..base.atomic import write_json
 from .store import INDEX_COLUMNS, CodeHistogram, StoreWriter, encode
 
 __all__ = ["build_corpus", "BuildResult", "process_source", "source_parts", "merge_parts", "parse_shard", "EXIT_SKIPPED"]

@@ -213,30 +213,20 @@ class CorpusStore:
             raise CorpusError(f"{self.path}: manifest lists {n} patches, the array holds {self.patches.shape[0]}")
         self._check_chunks()
 
-    def _chunk_files(self) -> list[tuple[int, Path]] | None:
-        """(first patch, file) of every chunk of ``patches``; None where the key encoding is not
-        zarr v3's default one (then chunk files cannot be named without zarr)."""
-        meta = json.loads((self.path / "patches" / "zarr.json").read_text())
-        enc = meta.get("chunk_key_encoding", {})
-        if enc.get("name") != "default" or meta.get("storage_transformers") or any(
-                c.get("name") == "sharding_indexed" for c in meta.get("codecs", [])):
-            return None
-        sep = enc.get("configuration", {}).get("separator", "/")
-        step = int(meta["chunk_grid"]["configuration"]["chunk_shape"][0])
-        rest = sep.join("0" for _ in self.patches.shape[1:])
-        return [(i * step, self.path / "patches" / ("c" + sep + str(i) + sep + rest).replace("/", os.sep))
-                for i in range(-(-len(self) // step))]
-
     def _check_chunks(self) -> None:
         """Refuse a store with a missing chunk file (zarr would read it as the fill value: constant
-        patches that would train silently); cheap: one stat per chunk."""
-        files = self._chunk_files()
-        step = int(self.patches.chunks[0])
-        for first, f in files or []:
-            if not f.is_file():
-                raise CorpusError(f"{self.path}: chunk file {f.relative_to(self.path)} (patches {first} to "
-                                  f"{min(first + step, len(self)) - 1}) is missing: the store is damaged; rebuild it "
-                                  "(corpus build --fresh) or restore it from a copy")
+        patches that would train silently); cheap: one directory listing."""
+        from ..volumes.gaps import missing_chunks
+
+        gaps = missing_chunks(self.patches, str(self.path / "patches"))
+        if gaps is not None and gaps[0]:
+            key, box = gaps[0][0]
+            raise CorpusError(f"{self.path}: chunk file patches/{key} (patches {box[0][0]} to {box[0][1] - 1}) is "
+                              "missing: the store is damaged; rebuild it (corpus build --fresh) or restore it from a copy")
+
+    def unchecked_sources(self) -> list[str]:
+        """Names of used sources without a recorded patch checksum (stores built by warmstart 0.1)."""
+        return [e["name"] for e in self.manifest["sources"] if e.get("status") == "ok" and e.get("patches_sha256") is None]
 
     def verify(self) -> list[str]:
         """Recompute the sha256 of every source's stored patches against the manifest's.
@@ -244,17 +234,14 @@ class CorpusStore:
         Returns
         -------
         list of str
-            One message per source whose patches differ (empty when all match); sources of stores
-            built before the checksums existed are reported as unchecked.
+            One message per source whose patches differ (empty when all match). Sources without a
+            recorded checksum are skipped (see :meth:`unchecked_sources`).
         """
         problems = []
         for e in self.manifest["sources"]:
-            if e.get("status") != "ok":
-                continue
             a, b = e["patch_range"]
             want = e.get("patches_sha256")
-            if want is None:
-                problems.append(f"{e['name']}: no checksum recorded (store built by an older warmstart): unchecked")
+            if e.get("status") != "ok" or want is None:
                 continue
             h = hashlib.sha256()
             for i in range(a, b, 4096):

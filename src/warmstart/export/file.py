@@ -153,10 +153,7 @@ def _check_target(path: Path) -> None:
 
 def read_manifest(path: str | os.PathLike[str]) -> dict[str, Any]:
     """The manifest of an encoder file (its header only; no tensor is read or checked)."""
-    from .manifest import check_manifest
-
-    meta = _open(path, lambda f: f.metadata())
-    return check_manifest(_checked(_parse(meta, path), path), path)
+    return _manifest(_open(path, lambda f: f.metadata()), path)
 
 
 def read_encoder_file(path: str | os.PathLike[str], verify: bool = True) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
@@ -174,13 +171,12 @@ def read_encoder_file(path: str | os.PathLike[str], verify: bool = True) -> tupl
         Not a readable safetensors file, no or an unknown manifest, or tensors that do not match
         the recorded hash (the file was damaged or altered).
     """
-    from .manifest import check_manifest
 
     def both(f: Any) -> tuple[Any, dict[str, np.ndarray]]:
         return f.metadata(), {k: f.get_tensor(k) for k in f.keys()}
 
     meta, arrays = _open(path, both)
-    manifest = check_manifest(_checked(_parse(meta, path), path), path)
+    manifest = _manifest(meta, path)
     if verify:
         want = manifest["tensors"]["sha256"]
         got = tensor_digest(arrays)
@@ -205,10 +201,15 @@ def _open(path: str | os.PathLike[str], fn: Any) -> Any:
         raise ExportError(f"{path}: not a readable safetensors encoder file ({e})") from e
 
 
-def _checked(d: dict[str, Any], path: str | os.PathLike[str]) -> dict[str, Any]:
-    if isinstance(d, dict) and d.get("format") == "warmstart-encoder":  # other formats: check_manifest says so
+def _manifest(meta: Mapping[str, str] | None, path: str | os.PathLike[str]) -> dict[str, Any]:
+    """The checked manifest of a file's metadata: digest (on the stored layout), then format,
+    version and fields (``check_manifest``, which also converts version 1)."""
+    from .manifest import FORMAT, check_manifest
+
+    d = _parse(meta, path)
+    if isinstance(d, dict) and d.get("format") == FORMAT:  # other formats: check_manifest says so
         _check_digest(d, path)
-    return d
+    return check_manifest(d, path)
 
 
 def _parse(meta: Mapping[str, str] | None, path: str | os.PathLike[str]) -> dict[str, Any]:

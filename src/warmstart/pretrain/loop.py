@@ -258,7 +258,7 @@ def pretrain(corpus: str | os.PathLike[str], out: str | os.PathLike[str], settin
             raise PretrainError(f"{corpus}: {n} patches are too few to pretrain on (a batch needs at least 2 per rank "
                                 "and loader worker); sample more patches when building the corpus")
         warnings.warn(f"{corpus}: {n} patches make no batch of {s.batch_size} per rank; training with batches of "
-                      f"{fits} instead (recorded in the run's recipe.json)", stacklevel=2)
+                      f"{fits} instead (recorded in the run's recipe.json)", stacklevel=3)  # past the output-lock wrapper, to the caller
         s = dataclasses.replace(s, batch_size=fits)
         ds.batch_size = fits
         steps_per_epoch = len(ds)

@@ -18,14 +18,15 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["missing_chunk_boxes", "GapMasked", "project_boxes"]
+__all__ = ["missing_chunks", "GapMasked", "project_boxes"]
 
 Box = tuple[tuple[int, int], ...]
 
 
-def missing_chunk_boxes(array: Any, folder: str) -> tuple[list[Box], int] | None:
-    """Index boxes ``((lo, hi), ...)`` per axis of the chunks whose files are missing, and the number
-    of chunks; None when the files cannot be named (a sharded or non-local array)."""
+def missing_chunks(array: Any, folder: str) -> tuple[list[tuple[str, Box]], int] | None:
+    """The chunks of a zarr array stored in ``folder`` whose files are missing, as (chunk key, index
+    box ``((lo, hi), ...)`` per axis), and the number of chunks; None when the files cannot be named
+    (a sharded or non-local array). The keys are zarr's own (``Array.metadata.encode_chunk_key``)."""
     meta = getattr(array, "metadata", None)
     encode = getattr(meta, "encode_chunk_key", None)
     if encode is None or not os.path.isdir(folder):
@@ -41,12 +42,13 @@ def missing_chunk_boxes(array: Any, folder: str) -> tuple[list[Box], int] | None
         rel = os.path.relpath(dirpath, folder)
         for f in files:
             present.add(f if rel == "." else os.path.join(rel, f).replace(os.sep, "/"))
-    boxes, total = [], 0
+    missing, total = [], 0
     for coords in itertools.product(*grid):
         total += 1
-        if encode(coords) not in present:
-            boxes.append(tuple((i * c, min((i + 1) * c, n)) for i, c, n in zip(coords, chunks, shape)))
-    return boxes, total
+        key = encode(coords)
+        if key not in present:
+            missing.append((key, tuple((i * c, min((i + 1) * c, n)) for i, c, n in zip(coords, chunks, shape))))
+    return missing, total
 
 
 class GapMasked:

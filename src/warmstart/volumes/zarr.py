@@ -15,7 +15,7 @@ import numpy as np
 
 from ..errors import VolumeReadError
 from .base import ArrayBackend, Volume, check_pixel_dtype, make_source
-from .gaps import GapMasked, missing_chunk_boxes, project_boxes
+from .gaps import GapMasked, missing_chunks, project_boxes
 from .units import to_micrometres
 
 __all__ = ["open_zarr", "ome_levels", "choose_level", "is_zarr_path"]
@@ -205,9 +205,9 @@ def open_zarr(
         array = _squeeze_to_3d(node, path)
         raw_names, raw_fixed = _names_of(raw), {}
     check_pixel_dtype(array.dtype, path)
-    gaps = missing_chunk_boxes(raw, raw_dir)
+    gaps = missing_chunks(raw, raw_dir)
     if gaps is not None and gaps[0]:
-        boxes, total = gaps
+        boxes, total = [box for _, box in gaps[0]], gaps[1]
         if len(boxes) == total:
             raise VolumeReadError(f"{path}: all {total} chunk files are missing: the array holds no data "
                                   "(a damaged copy, or one written empty)")
