@@ -73,10 +73,20 @@ def test_registry_errors():
         build_encoder("unet", norm="layer")
 
 
-@pytest.mark.parametrize("encoder, params", [("unet", {"base_width": 8, "depth": 4}), ("resnet18", {})])
-def test_channels_last_gives_the_same_step_as_the_default_layout(encoder, params):
+def _assert_same_gradients(a: torch.nn.Module, b: torch.nn.Module) -> None:
+    for (name, pa), pb in zip(a.named_parameters(), b.parameters()):
+        if pa.grad is not None:  # float32 sums in another order: equal to a relative 1e-4 of the gradient
+            assert float((pa.grad - pb.grad).norm() / pa.grad.norm().clamp_min(1e-12)) < 1e-4, name
+
+
+@pytest.mark.parametrize("encoder, params, shape", [
+    ("unet", {"base_width": 8, "depth": 4}, (8, 1, 64, 64)),
+    ("resnet18", {}, (8, 1, 64, 64)),
+    ("unet", {"base_width": 4, "depth": 3, "spatial_dims": 3}, (4, 1, 16, 16, 16)),
+])
+def test_channels_last_gives_the_same_step_as_the_default_layout(encoder, params, shape):
     # One SimCLR step's loss and gradients agree between memory layouts up to float rounding
-    # (PyTorch's channels_last only changes the order in memory).
+    # (PyTorch's channels_last / channels_last_3d only change the order in memory).
     import copy
 
     from warmstart.encoders import build_encoder
@@ -86,15 +96,70 @@ def test_channels_last_gives_the_same_step_as_the_default_layout(encoder, params
     torch.manual_seed(0)
     a = build_method("simclr", build_encoder(encoder, in_channels=1, **params))
     b = module_channels_last(copy.deepcopy(a))
-    conv = next(p for p in b.parameters() if p.dim() == 4 and p.shape[1] > 1)
-    assert conv.is_contiguous(memory_format=torch.channels_last) and not conv.is_contiguous()
-    x1, x2 = torch.randn(8, 1, 64, 64), torch.randn(8, 1, 64, 64)
+    fmt = torch.channels_last_3d if len(shape) == 5 else torch.channels_last
+    conv = next(p for p in b.parameters() if p.dim() == len(shape) and p.shape[1] > 1)
+    assert conv.is_contiguous(memory_format=fmt) and not conv.is_contiguous()
+    x1, x2 = torch.randn(shape), torch.randn(shape)
     la, _ = a.loss(x1, x2)
     lb, _ = b.loss(to_channels_last(x1), to_channels_last(x2))
     la.backward()
     lb.backward()
     torch.testing.assert_close(la, lb, rtol=1e-5, atol=1e-5)
-    for (name, pa), pb in zip(a.named_parameters(), b.parameters()):
-        if pa.grad is not None:  # float32 sums in another order: equal to a relative 1e-4 of the gradient
-            assert float((pa.grad - pb.grad).norm() / pa.grad.norm().clamp_min(1e-12)) < 1e-4, name
+    _assert_same_gradients(a, b)
     assert {k: v.contiguous() for k, v in b.state_dict().items()}.keys() == a.state_dict().keys()
+
+
+@pytest.mark.parametrize("shape", [(4, 1, 48, 48), (2, 1, 24, 24, 24)])
+def test_fine_tuning_step_is_the_same_in_channels_last(shape):
+    # The benchmark's step (reference U-Net with decoder and head, cross-entropy + soft Dice):
+    # loss and gradients agree between layouts, in 2-D and 3-D.
+    import copy
+
+    from warmstart.bench.train import _loss
+    from warmstart.encoders.memory import module_channels_last, to_channels_last
+    from warmstart.unet import UNet
+
+    torch.manual_seed(0)
+    dims = {"spatial_dims": 3} if len(shape) == 5 else {}
+    a = UNet("unet", classes=3, base_width=4, depth=3, **dims)
+    b = module_channels_last(copy.deepcopy(a))
+    x = torch.randn(shape)
+    y = torch.randint(3, (shape[0], *shape[2:]))
+    la, lb = _loss(a(x), y, 3, None), _loss(b(to_channels_last(x)), y, 3, None)
+    la.backward()
+    lb.backward()
+    torch.testing.assert_close(la, lb, rtol=1e-5, atol=1e-5)
+    _assert_same_gradients(a, b)
+
+
+def test_single_channel_views_are_channels_last_without_a_copy():
+    # A grayscale batch (C = 1) has the same memory in both layouts: the views need no conversion.
+    from warmstart.encoders.memory import to_channels_last
+
+    for shape in [(8, 1, 32, 32), (4, 1, 8, 16, 16)]:
+        x = torch.randn(shape)
+        assert to_channels_last(x).data_ptr() == x.data_ptr()
+    x = torch.randn(8, 3, 32, 32)  # a 2.5-D stack of 3 slices: one copy
+    y = to_channels_last(x)
+    assert y.data_ptr() != x.data_ptr() and y.is_contiguous(memory_format=torch.channels_last)
+    torch.testing.assert_close(x, y, rtol=0, atol=0)
+
+
+def test_3d_unet_encoder_and_network():
+    # 3x3x3 convolutions and 2x2x2 pooling: stage shapes halve along every axis; the spec records
+    # spatial_dims only when 3 (2-D specs are unchanged) and rebuilds the same network.
+    from warmstart.encoders import encoder_from_spec
+    from warmstart.unet import UNet
+
+    enc = build_encoder("unet", in_channels=1, base_width=4, depth=3, spatial_dims=3)
+    feats = enc(torch.zeros(2, 1, 16, 24, 32))
+    assert [tuple(f.shape) for f in feats] == [(2, 4, 16, 24, 32), (2, 8, 8, 12, 16), (2, 16, 4, 6, 8)]
+    assert enc.spec.params["spatial_dims"] == 3
+    assert "spatial_dims" not in build_encoder("unet", base_width=4, depth=3).spec.params
+    again = encoder_from_spec(enc.spec)
+    assert {k: v.shape for k, v in again.state_dict().items()} == {k: v.shape for k, v in enc.state_dict().items()}
+    assert enc.levels[0].conv1.weight.shape == (4, 1, 3, 3, 3)
+    net = UNet(enc.spec, classes=3)
+    assert tuple(net(torch.zeros(1, 1, 16, 16, 16)).shape) == (1, 3, 16, 16, 16)
+    with pytest.raises(ValueError, match="spatial_dims"):
+        build_encoder("unet", spatial_dims=4)

@@ -24,7 +24,7 @@ import torch.nn.functional as F
 from torch import nn
 
 from .encoders import EncoderSpec, Stage, build_encoder, encoder_from_spec
-from .encoders.unet import DoubleConv
+from .encoders.unet import DoubleConv, check_spatial_dims, conv_type
 
 __all__ = ["UNet", "UNetDecoder"]
 
@@ -38,36 +38,41 @@ class UNetDecoder(nn.Module):
         The encoder's stages.
     norm : str
         Normalization of the decoder's convolutions (see ``make_norm``).
+    spatial_dims : {2, 3}
+        Bilinear upsampling and 3x3 convolutions (2), or trilinear and 3x3x3 (3).
     """
 
-    def __init__(self, stages: Sequence[Stage], norm: str = "batch") -> None:
+    def __init__(self, stages: Sequence[Stage], norm: str = "batch", spatial_dims: int = 2) -> None:
         super().__init__()
         self.norm = norm
+        self.spatial_dims = dims = check_spatial_dims(spatial_dims)
+        self.mode = "trilinear" if dims == 3 else "bilinear"
         self.strides = [s.stride for s in stages]
         ch = [s.channels for s in stages]
         self.blocks = nn.ModuleList()
         width = ch[-1]
         for i in range(len(ch) - 2, -1, -1):  # deepest-but-one up to the shallowest
-            self.blocks.append(DoubleConv(width + ch[i], ch[i], norm))
+            self.blocks.append(DoubleConv(width + ch[i], ch[i], norm, dims))
             width = ch[i]
         if self.strides[0] > 1:  # one more level at full resolution
             self.out_channels = max(width // 2, 8)
-            self.final: DoubleConv | None = DoubleConv(width, self.out_channels, norm)
+            self.final: DoubleConv | None = DoubleConv(width, self.out_channels, norm, dims)
         else:
             self.out_channels, self.final = width, None
 
-    def forward(self, feats: Sequence[torch.Tensor], size: tuple[int, int]) -> torch.Tensor:
+    def forward(self, feats: Sequence[torch.Tensor], size: tuple[int, ...]) -> torch.Tensor:
         x = feats[-1]
+        n = self.spatial_dims
         for block, skip in zip(self.blocks, reversed(feats[:-1])):
-            x = F.interpolate(x, size=skip.shape[-2:], mode="bilinear", align_corners=False)
+            x = F.interpolate(x, size=skip.shape[-n:], mode=self.mode, align_corners=False)
             x = block(torch.cat([x, skip], dim=1))
         if self.final is not None:
-            x = self.final(F.interpolate(x, size=size, mode="bilinear", align_corners=False))
+            x = self.final(F.interpolate(x, size=size, mode=self.mode, align_corners=False))
         return x
 
 
 class UNet(nn.Module):
-    """U-Net for 2-D segmentation with a registered encoder.
+    """U-Net for 2-D (or, with a 3-D encoder, 3-D) segmentation with a registered encoder.
 
     Parameters
     ----------
@@ -95,11 +100,13 @@ class UNet(nn.Module):
             self.encoder = encoder_from_spec(encoder)
         else:
             self.encoder = build_encoder(encoder, **encoder_params)
-        self.decoder = UNetDecoder(self.encoder.spec.stages, decoder_norm)
-        self.head = nn.Conv2d(self.decoder.out_channels, classes, 1)
+        # The encoder's spec says whether it works on slices or volumes; the decoder follows.
+        dims = int(self.encoder.spec.params.get("spatial_dims", 2))
+        self.decoder = UNetDecoder(self.encoder.spec.stages, decoder_norm, dims)
+        self.head = conv_type(dims)(self.decoder.out_channels, classes, 1)
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
-        return self.head(self.decoder(self.encoder(x), tuple(x.shape[-2:])))
+        return self.head(self.decoder(self.encoder(x), tuple(x.shape[-self.decoder.spatial_dims:])))
 
     @classmethod
     def from_file(cls, file: str | os.PathLike[str], classes: int = 2, in_channels: int | None = None,

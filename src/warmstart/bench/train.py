@@ -64,9 +64,10 @@ def _loss(logits: torch.Tensor, target: torch.Tensor, classes: int, ignore: int 
     ce = F.cross_entropy(logits, target, ignore_index=ign)
     keep = (target != ign).unsqueeze(1).float()
     prob = logits.softmax(1) * keep
-    onehot = F.one_hot(target.clamp(0, classes - 1), classes).permute(0, 3, 1, 2).float() * keep
-    inter = (prob * onehot).sum((0, 2, 3))[1:]
-    denom = (prob + onehot).sum((0, 2, 3))[1:]
+    onehot = F.one_hot(target.clamp(0, classes - 1), classes).movedim(-1, 1).float() * keep
+    dims = (0, *range(2, logits.dim()))  # batch and every spatial axis (2-D or 3-D)
+    inter = (prob * onehot).sum(dims)[1:]
+    denom = (prob + onehot).sum(dims)[1:]
     dice = (2 * inter + 1) / (denom + 1)
     return ce + (1 - dice.mean())
 

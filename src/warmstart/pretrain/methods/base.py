@@ -38,8 +38,8 @@ def build_method(name: str, encoder: nn.Module, **params: Any) -> "Method":
 
 
 def pooled(encoder: nn.Module, x: torch.Tensor) -> torch.Tensor:
-    """Global average pool of the encoder's deepest feature map: (B, C, H, W) -> (B, C)."""
-    return encoder(x)[-1].mean(dim=(-2, -1))
+    """Global average pool of the encoder's deepest feature map: (B, C, [D,] H, W) -> (B, C)."""
+    return encoder(x)[-1].flatten(2).mean(-1)
 
 
 @dataclass
