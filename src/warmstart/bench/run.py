@@ -11,6 +11,7 @@ from typing import Any, Callable, Sequence
 import numpy as np
 
 from ..base.atomic import write_json
+from ..base.cores import usable_cores
 from ..base.lock import locks_output
 from ..errors import WarmstartError
 from .data import load_pairs, make_split, n_classes
@@ -188,8 +189,7 @@ def run_bench(labels: str | os.PathLike[str], encoders: Sequence[str | os.PathLi
     s = settings or BenchSettings()
     out = Path(out)
     (out / "runs").mkdir(parents=True, exist_ok=True)
-    if s.threads:
-        torch.set_num_threads(s.threads)
+    torch.set_num_threads(s.threads or usable_cores())  # one per usable physical core by default
     pairs = load_pairs(labels, s.ignore_label)
     classes = n_classes(pairs, s.ignore_label)
     split = make_split(pairs, s)

@@ -58,7 +58,8 @@ class BenchSettings:
     device : str
         ``auto`` (a GPU when there is one), ``cpu`` or ``cuda``.
     threads : int, optional
-        CPU threads torch uses for each fine-tuning run (default: torch's choice). Not to be
+        CPU threads torch uses for each fine-tuning run (default: the usable physical cores,
+        :func:`warmstart.base.cores.usable_cores`). Not to be
         confused with ``corpus.workers`` (processes that build a corpus) or
         ``pretrain.num_workers`` (data-loader processes that feed pretraining).
     channels_last : bool

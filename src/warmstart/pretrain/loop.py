@@ -21,6 +21,7 @@ import torch
 
 from .. import __version__
 from ..base.atomic import write_json
+from ..base.cores import usable_cores
 from ..base.lock import locks_output
 from ..errors import PretrainError
 from ..encoders import build_encoder
@@ -30,6 +31,7 @@ from .augment import apply_view, draw_params
 from .data import CorpusBatches
 from .history import HistoryLogger, read_history
 from .methods import Views, build_method
+from .precision import resolve_precision, runs_on_cpu
 from .monitors import alignment, embedding_spread, knn_accuracy, load_probe, uniformity
 from .progress import training_progress
 from .settings import PretrainSettings
@@ -172,14 +174,6 @@ class PretrainResult:
     summary: dict[str, Any] = field(default_factory=dict)
 
 
-def _precision(s: PretrainSettings) -> str:
-    if s.precision != "auto":
-        return "32-true" if s.precision == "32" else s.precision
-    if torch.cuda.is_available() and s.accelerator in ("auto", "gpu", "cuda") and torch.cuda.is_bf16_supported():
-        return "bf16-mixed"
-    return "32-true"
-
-
 def _first_process() -> bool:
     """The process that writes the run folder's own files (the others of a distributed run do not)."""
     return os.environ.get("LOCAL_RANK", "0") == "0" and os.environ.get("NODE_RANK", "0") == "0"
@@ -221,6 +215,9 @@ def pretrain(corpus: str | os.PathLike[str], out: str | os.PathLike[str], settin
         raise PretrainError(f"{out}: nothing to resume (no checkpoints/last.ckpt)")
     if not resume and last.exists():
         raise PretrainError(f"{out}: holds a run already; pass --resume to continue it or choose a new folder")
+    precision = resolve_precision(s.precision, s.accelerator)  # refused before anything is written
+    if runs_on_cpu(s.accelerator):  # the process's intra-op threads: one per usable physical core
+        torch.set_num_threads(s.threads or usable_cores())
     out.mkdir(parents=True, exist_ok=True)
     first_process = _first_process()
     store = open_corpus(corpus)
@@ -240,7 +237,7 @@ def pretrain(corpus: str | os.PathLike[str], out: str | os.PathLike[str], settin
     position = _EpochPosition(ds, 0)
     trainer = pl.Trainer(
         max_steps=-1, accelerator=s.accelerator, devices=s.devices, strategy=s.strategy,
-        num_nodes=s.num_nodes, precision=_precision(s), gradient_clip_val=s.grad_clip or None,
+        num_nodes=s.num_nodes, precision=precision, gradient_clip_val=s.grad_clip or None,
         deterministic=s.deterministic, logger=_loggers(out, resume),
         callbacks=[ckpt, position, *training_progress(progress)], enable_progress_bar=progress,
         enable_model_summary=False, log_every_n_steps=1, default_root_dir=out / LIBRARY_LOGS,

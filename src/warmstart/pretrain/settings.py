@@ -108,12 +108,17 @@ class PretrainSettings:
         Gradient norm clipping (0 disables).
     precision : str
         Lightning precision: ``32-true``, ``16-mixed``, ``bf16-mixed``, or ``auto`` (bf16-mixed on
-        a GPU that supports it, else 32-true).
+        a GPU that supports it, else 32-true: float32 on every CPU). bf16 or fp16 for a CPU run
+        is refused on a CPU that would emulate it (about 10x slower; see
+        :mod:`warmstart.pretrain.precision`).
     accelerator, devices, strategy, num_nodes
         Passed to Lightning (``auto``; several devices use DDP).
+    threads : int, optional
+        Torch's intra-op threads for a CPU run; default the usable physical cores (affinity mask
+        and container quota respected, see :func:`warmstart.base.cores.usable_cores`).
     num_workers : int
         DataLoader workers per device for corpora read from disk (a corpus held in memory is
-        served without worker processes).
+        served without worker processes). Each worker computes with one thread.
     in_memory : str or bool
         ``auto``, true or false (see CorpusBatches).
     seed : int
@@ -157,6 +162,7 @@ class PretrainSettings:
     devices: str = "auto"
     strategy: str = "auto"
     num_nodes: int = 1
+    threads: int | None = None
     num_workers: int = 2
     in_memory: bool | str = "auto"
     seed: int = 0
@@ -169,7 +175,8 @@ class PretrainSettings:
     channels_last: bool = True
 
     def __post_init__(self) -> None:
-        require_positive(self, "pretrain", "batch_size", "epochs", "checkpoint_every", "num_nodes", "max_steps")
+        require_positive(self, "pretrain", "batch_size", "epochs", "checkpoint_every", "num_nodes", "max_steps",
+                         "threads")
         if not self.lr > 0 or self.weight_decay < 0 or not 0 <= self.warmup_fraction < 1:
             raise RecipeError("pretrain.lr must be > 0, weight_decay >= 0 and 0 <= warmup_fraction < 1")
         if self.precision not in ("auto", "32-true", "32", "16-mixed", "bf16-mixed"):
