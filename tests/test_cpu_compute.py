@@ -127,3 +127,29 @@ def test_an_emulated_precision_is_refused_before_the_run_folder_is_made(tmp_path
     with pytest.raises(PretrainError, match="bfloat16"):
         pretrain(tiny_corpus(tmp_path, n=1), tmp_path / "run", PretrainSettings(precision="bf16-mixed", accelerator="cpu"), progress=False)
     assert not (tmp_path / "run").exists()
+
+
+def test_the_cli_names_the_reason_and_sets_the_threads(tmp_path, monkeypatch, capsys):
+    from conftest import tiny_corpus
+
+    import torch
+
+    import warmstart.pretrain.precision as precision
+    from warmstart.cli import main
+
+    corpus = tiny_corpus(tmp_path, n=1)
+    monkeypatch.setattr(precision, "native_low_precision", lambda dtype: False)
+    code = main(["-q", "pretrain", str(corpus), "-o", str(tmp_path / "r"), "--precision", "bf16-mixed",
+                 "--accelerator", "cpu", "--max-steps", "1"])
+    err = capsys.readouterr().err
+    assert code != 0 and "bfloat16" in err and "Traceback" not in err
+    before = torch.get_num_threads()
+    try:
+        assert main(["-q", "pretrain", str(corpus), "-o", str(tmp_path / "r1"), "--recipe", "smoke", "--threads", "1",
+                     "--accelerator", "cpu", "--max-steps", "1"]) == 0
+        assert torch.get_num_threads() == 1
+        import json
+
+        assert json.loads((tmp_path / "r1" / "recipe.json").read_text())["pretrain"]["threads"] == 1
+    finally:
+        torch.set_num_threads(before)

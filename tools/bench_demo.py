@@ -1,7 +1,7 @@
 #!/usr/bin/env python3
 """Run time of ``warmstart demo``: seconds per stage and in total, against the targets.
 
-Targets (2 CPU cores, no GPU): ``--quick`` under 240 s, the default under 900 s. Each variant
+Targets (2 CPU cores, no GPU): ``--quick`` under 150 s, the default under 480 s. Each variant
 runs in a fresh temporary folder, so nothing is reused.
 
 Usage: python tools/bench_demo.py [--full] [--keep DIR]
@@ -14,12 +14,12 @@ import shutil
 import tempfile
 from pathlib import Path
 
-TARGETS = {"quick": 240.0, "default": 900.0}
+TARGETS = {"quick": 150.0, "default": 480.0}
 
 
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--full", action="store_true", help="also run the default demo (about 12 minutes)")
+    ap.add_argument("--full", action="store_true", help="also run the default demo (about 8 minutes)")
     ap.add_argument("--keep", metavar="DIR", help="keep the demo folders under DIR")
     args = ap.parse_args()
     from warmstart.demo.run import run_demo

@@ -9,11 +9,20 @@
 
 Also prints the end-to-end figure of ``warmstart.pretrain.loop.pretrain`` (Lightning included).
 
-With ``--layouts``: only the bare step, in the default and in the channels-last memory layout
-(what pretraining and the benchmark use), interleaved, and the speed-up.
+All three use the channels-last memory layout, as pretraining does. Torch threads are the usable
+cores (``warmstart.base.cores.usable_cores``), as in pretraining and the benchmark.
+
+With ``--roof``: achieved GFLOP/s (FLOPs counted by torch.utils.flop_counter) of the 2-D and 3-D
+pretraining and fine-tuning steps, default vs channels-last layout, as a fraction of an fp32
+2048^2 matmul timed in the same run (before and after); ``--compile`` adds torch.compile of the
+2-D pretraining step, its first (compiling) step timed apart.
+
+With ``--threads``: the bare step at 1, all and twice the usable cores, and our pipeline reading
+the corpus from disk with 0, 1 and 2 loader workers.
 
 Usage: python tools/bench_pretrain.py [--patch 64] [--batch 128] [--steps 12] [--rounds 5] [--encoder resnet_narrow]
-                                      [--layouts]
+                                      [--encoder-param base_width=16 ...] [--roof [--compile] [--batch3d 32] [--case TEXT]]
+                                      [--threads]
 """
 from __future__ import annotations
 
@@ -39,13 +48,17 @@ def make_corpus(root: Path, patch: int) -> Path:
     return build_corpus(root / "archive", root / "corpus.zarr", s, report=False, progress=False).path
 
 
-def model_and_opt(encoder: str, channels: int, channels_last: bool = False):
+# The demo's encoder (recipes/demo.toml), also the default of --threads.
+DEMO_UNET = {"base_width": 16, "depth": 4}
+
+
+def model_and_opt(encoder: str, channels: int, channels_last: bool = False, **params):
     from warmstart.encoders import build_encoder
     from warmstart.encoders.memory import module_channels_last
     from warmstart.pretrain.methods import build_method
 
     torch.manual_seed(0)
-    method = build_method("simclr", build_encoder(encoder, in_channels=channels))
+    method = build_method("simclr", build_encoder(encoder, in_channels=channels, **params))
     if channels_last:
         module_channels_last(method)
     opt = torch.optim.AdamW([p for p in method.parameters() if p.requires_grad], lr=1e-3)
@@ -74,17 +87,22 @@ def timed(it, method, opt, steps: int, warmup: int = 2) -> float:
 
 
 def bare(batch: int, patch: int):
+    from warmstart.encoders.memory import to_channels_last
+
     g = torch.Generator().manual_seed(0)
-    v1, v2 = torch.rand(batch, 1, patch, patch, generator=g), torch.rand(batch, 1, patch, patch, generator=g)
+    v1, v2 = (to_channels_last(torch.rand(batch, 1, patch, patch, generator=g)) for _ in range(2))
     while True:
         yield v1, v2
 
 
-def ours(corpus: Path, batch: int, workers: int):
+def ours(corpus: Path, batch: int, workers: int, in_memory: bool | str = "auto", encoder_layout: bool = False):
+    """Batches from the store, two batched views (in channels-last order with ``encoder_layout``)."""
+    from warmstart.encoders.memory import to_channels_last
     from warmstart.pretrain.augment import ViewSettings, apply_view, draw_params
     from warmstart.pretrain.data import CorpusBatches
 
-    ds = CorpusBatches(corpus, batch, seed=0, num_workers=workers)
+    ds = CorpusBatches(corpus, batch, seed=0, num_workers=workers, in_memory=in_memory)
+    layout = to_channels_last if encoder_layout else (lambda t: t)
     # A corpus held in memory needs no loader processes: they would only take cores from the model.
     workers = 0 if ds.in_memory else workers
     ds.num_workers = workers
@@ -96,7 +114,8 @@ def ours(corpus: Path, batch: int, workers: int):
         ds.set_epoch(epoch)
         for x in loader:
             size = x.shape[-1]
-            yield (apply_view(x, draw_params(len(x), size, views, g), g), apply_view(x, draw_params(len(x), size, views, g), g))
+            yield (layout(apply_view(x, draw_params(len(x), size, views, g), g)),
+                   layout(apply_view(x, draw_params(len(x), size, views, g), g)))
         epoch += 1
 
 
@@ -127,34 +146,173 @@ def reference(corpus: Path, batch: int, workers: int, patch: int):
     ds = _PilPatches(open_corpus(corpus).read(), patch)
     loader = torch.utils.data.DataLoader(ds, batch_size=batch, shuffle=True, num_workers=workers, drop_last=True,
                                          persistent_workers=workers > 0)
+    from warmstart.encoders.memory import to_channels_last
+
     while True:
         for v1, v2 in loader:
-            yield v1, v2
+            yield to_channels_last(v1), to_channels_last(v2)
 
 
-def layouts() -> None:
-    """Bare step, default vs channels-last layout, interleaved rounds (medians)."""
+def matmul_roof(n: int = 2048, reps: int = 8) -> float:
+    """GFLOP/s of an n x n float32 matmul (2 n^3 FLOPs), median of ``reps``: the roof of this run."""
+    a, b = torch.randn(n, n), torch.randn(n, n)
+    a @ b
+    times = []
+    for _ in range(reps):
+        t0 = time.perf_counter()
+        a @ b
+        times.append(time.perf_counter() - t0)
+    return 2 * n**3 / float(np.median(times)) / 1e9
+
+
+def roof_cases(batch2d: int, batch3d: int) -> dict[str, tuple]:
+    """name -> (make model, make inputs, step kind): the steps pretraining and fine-tuning run."""
+    from warmstart.encoders import build_encoder
+    from warmstart.pretrain.methods import build_method
+    from warmstart.unet import UNet
+
+    def simclr(dims: int, width: int):
+        return lambda: build_method("simclr", build_encoder("unet", in_channels=1, base_width=width, depth=4,
+                                                            spatial_dims=dims))
+
+    def unet(dims: int, width: int):
+        return lambda: UNet("unet", classes=3, in_channels=1, base_width=width, depth=4, spatial_dims=dims)
+
+    def pair(shape):
+        return lambda: tuple(torch.randn(shape) for _ in range(2))
+
+    def labelled(shape):
+        return lambda: (torch.randn(shape), torch.randint(3, (shape[0], *shape[2:])))
+
+    return {
+        f"2-D pretraining: U-Net encoder w16 d4, SimCLR, {batch2d} x 64^2":
+            (simclr(2, 16), pair((batch2d, 1, 64, 64)), "pretrain"),
+        f"3-D pretraining: U-Net encoder w8 d4, SimCLR, {batch3d} x 32^3":
+            (simclr(3, 8), pair((batch3d, 1, 32, 32, 32)), "pretrain"),
+        "2-D fine-tuning: U-Net w16 d4, CE + Dice, 8 x 64^2 (the bench's batch)":
+            (unet(2, 16), labelled((8, 1, 64, 64)), "finetune"),
+        "3-D fine-tuning: U-Net w8 d4, CE + Dice, 2 x 64^3":
+            (unet(3, 8), labelled((2, 1, 64, 64, 64)), "finetune"),
+    }
+
+
+def roof_step(kind: str, model, opt, inputs, compiled=None):
+    """One forward, backward and AdamW step of a case (``compiled``: the compiled loss function)."""
+    from warmstart.bench.train import _loss
+
+    if kind == "pretrain":
+        loss = (compiled or (lambda a, b: model.loss(a, b)[0]))(*inputs)
+    else:
+        x, y = inputs
+        loss = _loss((compiled or model)(x), y, 3, None)
+    opt.zero_grad(set_to_none=True)
+    loss.backward()
+    opt.step()
+
+
+def roof() -> None:
+    """Achieved GFLOP/s of each step against the same run's matmul roof, default vs channels-last."""
     import sys
+
+    from torch.utils.flop_counter import FlopCounterMode
+
+    from warmstart.encoders.memory import module_channels_last, to_channels_last
 
     args = sys.argv
     get = lambda name, d: type(d)(args[args.index(name) + 1]) if name in args else d  # noqa: E731
-    batch, patch, steps, rounds = get("--batch", 128), get("--patch", 64), get("--steps", 12), get("--rounds", 5)
-    encoder = get("--encoder", "resnet_narrow")
-    from warmstart.encoders.memory import to_channels_last
+    steps, rounds = get("--steps", 4), get("--rounds", 3)
+    cases = roof_cases(get("--batch", 128), get("--batch3d", 32))
+    if "--case" in args:  # only the cases whose name contains this text
+        cases = {k: v for k, v in cases.items() if get("--case", "") in k}
+    roofs = [matmul_roof()]
+    print(f"{torch.get_num_threads()} torch threads; fp32 matmul roof (2048^2) {roofs[0]:.0f} GFLOP/s")
+    rows = []
+    for name, (make, inputs_of, kind) in cases.items():
+        torch.manual_seed(0)
+        inputs = inputs_of()
+        model = make()
+        opt = torch.optim.AdamW(model.parameters(), lr=1e-4)
+        with FlopCounterMode(display=False) as fc:
+            roof_step(kind, model, opt, inputs)
+        flops = fc.get_total_flops()
+        layouts = {"default": (model, opt, inputs)}
+        cl = module_channels_last(make())
+        layouts["channels_last"] = (cl, torch.optim.AdamW(cl.parameters(), lr=1e-4),
+                                    tuple(to_channels_last(t) if t.is_floating_point() else t for t in inputs))
+        times: dict[str, list[float]] = {k: [] for k in layouts}
+        for _ in range(rounds):  # interleaved, medians: a shared machine drifts between minutes
+            for k, (m, o, x) in layouts.items():
+                roof_step(kind, m, o, x)
+                t0 = time.perf_counter()
+                for _ in range(steps):
+                    roof_step(kind, m, o, x)
+                times[k].append((time.perf_counter() - t0) / steps)
+        row = {"name": name, "gflop": flops / 1e9}
+        for k, v in times.items():
+            row[k] = float(np.median(v))
+        if "--compile" in args and kind == "pretrain" and name.startswith("2-D"):
+            m = module_channels_last(make())
+            o = torch.optim.AdamW(m.parameters(), lr=1e-4)
+            fn = torch.compile(lambda a, b: m.loss(a, b)[0])
+            x = layouts["channels_last"][2]
+            t0 = time.perf_counter()
+            roof_step(kind, m, o, x, fn)
+            row["compile_first"] = time.perf_counter() - t0
+            t0 = time.perf_counter()
+            for _ in range(steps * rounds):
+                roof_step(kind, m, o, x, fn)
+            row["compiled"] = (time.perf_counter() - t0) / (steps * rounds)
+        rows.append(row)
+        print(f"  {name}: {row['gflop']:.1f} GFLOP/step, default {row['default']:.3f} s, "
+              f"channels_last {row['channels_last']:.3f} s" + (f", compiled {row['compiled']:.3f} s "
+                                                              f"(first {row['compile_first']:.0f} s)" if "compiled" in row else ""),
+              flush=True)
+    roofs.append(matmul_roof())
+    top = float(np.mean(roofs))
+    print(f"fp32 matmul roof at the end {roofs[1]:.0f} GFLOP/s; fractions below use the mean, {top:.0f} GFLOP/s")
+    print(f"| step (forward + backward + AdamW) | GFLOP/step | default | channels_last | speed-up |"
+          + (" torch.compile |" if any("compiled" in r for r in rows) else ""))
+    for r in rows:
+        cells = [f"{r['gflop'] / r[k]:.0f} GFLOP/s ({100 * r['gflop'] / r[k] / top:.0f} %), {r[k]:.3f} s"
+                 for k in ("default", "channels_last")]
+        line = f"| {r['name']} | {r['gflop']:.1f} | {cells[0]} | {cells[1]} | {r['default'] / r['channels_last']:.2f}x |"
+        if "compiled" in r:
+            line += (f" {r['gflop'] / r['compiled']:.0f} GFLOP/s ({100 * r['gflop'] / r['compiled'] / top:.0f} %), "
+                     f"first step {r['compile_first']:.0f} s |")
+        print(line)
 
-    x = [torch.randn(batch, 1, patch, patch) for _ in range(2)]
-    feeds = {"default": iter(lambda: (x[0], x[1]), None),
-             "channels_last": iter(lambda: (to_channels_last(x[0]), to_channels_last(x[1])), None)}
-    models = {"default": model_and_opt(encoder, 1), "channels_last": model_and_opt(encoder, 1, channels_last=True)}
-    runs: dict[str, list[float]] = {k: [] for k in feeds}
+
+def threads_and_workers(corpus: Path | None, batch: int, steps: int, rounds: int) -> None:
+    """Bare 2-D U-Net step at 1, all and twice the usable cores; then our pipeline read from disk
+    with 0, 1 and 2 loader workers."""
+    from warmstart.base.cores import usable_cores
+    from warmstart.encoders.memory import module_channels_last, to_channels_last
+
+    cores = usable_cores()
+    x = [to_channels_last(torch.randn(batch, 1, 64, 64)) for _ in range(2)]
+    feed = iter(lambda: (x[0], x[1]), None)
+    counts = sorted({1, cores, 2 * cores})
+    models = {n: model_and_opt("unet", 1, True, **DEMO_UNET) for n in counts}
+    runs: dict[int, list[float]] = {n: [] for n in counts}
     for _ in range(rounds):
-        for k in feeds:
-            runs[k].append(timed(feeds[k], *models[k], steps))
-    fig = {k: float(np.median(v)) for k, v in runs.items()}
-    print(f"bare SimCLR step, {encoder}, batch {batch} of {patch} px, {torch.get_num_threads()} threads:")
-    for k, v in fig.items():
-        print(f"  {k:14s} {v:8.1f} pairs/s (median of {rounds}; {min(runs[k]):.0f}-{max(runs[k]):.0f})")
-    print(f"  channels_last / default = {fig['channels_last'] / fig['default']:.2f}")
+        for n in counts:
+            torch.set_num_threads(n)
+            runs[n].append(timed(feed, *models[n], steps))
+    torch.set_num_threads(cores)
+    print(f"bare U-Net (w16 d4) SimCLR step, batch {batch} of 64 px, {cores} usable cores:")
+    for n in counts:
+        print(f"  {n:2d} threads {np.median(runs[n]):7.1f} pairs/s ({np.median(runs[n]) / np.median(runs[cores]):.2f}x of {cores})")
+    if corpus is None:
+        return
+    pipes = {w: ours(corpus, batch, w, in_memory=False, encoder_layout=True) for w in (0, 1, 2)}
+    models2 = {w: model_and_opt("unet", 1, True, **DEMO_UNET) for w in pipes}
+    runs2: dict[int, list[float]] = {w: [] for w in pipes}
+    for _ in range(rounds):
+        for w in pipes:
+            runs2[w].append(timed(pipes[w], *models2[w], steps))
+    print(f"our pipeline, corpus read from disk, {cores} torch threads:")
+    for w in pipes:
+        print(f"  {w} loader workers {np.median(runs2[w]):7.1f} pairs/s")
 
 
 def main() -> None:
@@ -165,15 +323,30 @@ def main() -> None:
     ap.add_argument("--rounds", type=int, default=5)
     ap.add_argument("--workers", type=int, default=2)
     ap.add_argument("--encoder", default="resnet_narrow")
-    ap.add_argument("--layouts", action="store_true", help="compare memory layouts of the bare step only")
+    ap.add_argument("--encoder-param", action="append", default=[], metavar="KEY=INT",
+                    help="encoder constructor parameter, e.g. base_width=16 (repeatable)")
+    ap.add_argument("--roof", action="store_true",
+                    help="GFLOP/s of the 2-D and 3-D pretraining and fine-tuning steps against the matmul roof, "
+                         "default vs channels-last layout")
+    ap.add_argument("--batch3d", type=int, default=32, help="with --roof: cubes per 3-D pretraining batch")
+    ap.add_argument("--compile", action="store_true", help="with --roof: also time torch.compile of the 2-D step")
+    ap.add_argument("--case", help="with --roof: only the steps whose name contains this text (e.g. '2-D fine')")
+    ap.add_argument("--threads", action="store_true",
+                    help="bare step at 1, all and twice the usable cores, and disk-read pipelines with 0-2 workers")
     args = ap.parse_args()
-    torch.set_num_threads(torch.get_num_threads())
-    if args.layouts:
-        layouts()
+    from warmstart.base.cores import usable_cores
+
+    torch.set_num_threads(usable_cores())  # what pretrain and bench do
+    if args.roof:
+        roof()
         return
+    params = {k: int(v) for k, v in (p.split("=", 1) for p in args.encoder_param)}
     root = Path(tempfile.mkdtemp(prefix="warmstart-bench-pre-"))
     try:
         corpus = make_corpus(root, args.patch)
+        if args.threads:
+            threads_and_workers(corpus, args.batch, args.steps, args.rounds)
+            return
         from warmstart.corpus.store import open_corpus
 
         print(f"corpus: {len(open_corpus(corpus))} patches of {args.patch} px; encoder {args.encoder}, batch {args.batch}, "
@@ -181,9 +354,9 @@ def main() -> None:
         # Interleave the three pipelines over several rounds and take medians: on a shared
         # 2-core machine a single timing drifts by 15 % from one minute to the next.
         pipelines = {"a": ("bare model step", bare(args.batch, args.patch)),
-                     "b": ("ours (store + batched views)", ours(corpus, args.batch, args.workers)),
+                     "b": ("ours (store + batched views)", ours(corpus, args.batch, args.workers, encoder_layout=True)),
                      "c": ("reference (per-sample PIL views in workers)", reference(corpus, args.batch, args.workers, args.patch))}
-        models = {k: model_and_opt(args.encoder, 1) for k in pipelines}
+        models = {k: model_and_opt(args.encoder, 1, True, **params) for k in pipelines}
         iters = {k: iter(v[1]) for k, v in pipelines.items()}
         runs: dict[str, list[float]] = {k: [] for k in pipelines}
         for _ in range(args.rounds):
@@ -198,7 +371,7 @@ def main() -> None:
         from warmstart.pretrain.loop import pretrain
         from warmstart.pretrain.settings import PretrainSettings
 
-        s = PretrainSettings(encoder=args.encoder, batch_size=args.batch, max_steps=args.steps + 5, num_workers=args.workers,
+        s = PretrainSettings(encoder=args.encoder, encoder_params=params, batch_size=args.batch, max_steps=args.steps + 5, num_workers=args.workers,
                              precision="32-true", accelerator="cpu", checkpoint_every=10_000)
         t0 = time.perf_counter()
         res = pretrain(corpus, root / "run", s, progress=False)

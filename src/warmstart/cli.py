@@ -125,6 +125,8 @@ def build_parser() -> argparse.ArgumentParser:
                    help="data-loader processes per device that read batches from the corpus while the model trains "
                         "(pretrain.num_workers; 0: read in the training process)")
     _deprecated_alias(g, "--num-workers", "--loader-workers", dest="num_workers", type=int)
+    g.add_argument("--threads", type=int, metavar="N",
+                   help="CPU threads torch uses for training (pretrain.threads; default: the usable physical cores)")
     g.add_argument("--deterministic", action="store_true", default=None, help="deterministic algorithms (identical reruns)")
     pre.add_argument("--resume", action="store_true", help="continue the run in RUN from its last checkpoint")
     pre.add_argument("--json", action="store_true")
@@ -355,7 +357,7 @@ def cmd_corpus_merge(args: argparse.Namespace) -> int:
 _PRETRAIN_SHORTCUTS = {
     "method": "method", "encoder": "encoder", "epochs": "epochs", "max_steps": "max_steps", "batch_size": "batch_size",
     "lr": "lr", "seed": "seed", "devices": "devices", "strategy": "strategy", "accelerator": "accelerator",
-    "precision": "precision", "num_workers": "num_workers", "deterministic": "deterministic",
+    "precision": "precision", "num_workers": "num_workers", "threads": "threads", "deterministic": "deterministic",
 }
 
 

@@ -1,11 +1,13 @@
 """Channels-last memory layout for training on CPUs (and GPUs).
 
-Convolutions in channels-last layout (N, H, W, C in memory) are faster on a CPU for wide networks
-and the same for narrow ones, with the same results up to float rounding. Measured with
-``tools/bench_pretrain.py --layouts`` (bare SimCLR step, batch 128 of 64 px, 2 cores): the U-Net
-encoder 1.23x (52.5 -> 64.5 pairs/s; 1.5x at base_width 16, depth 4, the demo's), the narrow
-ResNet 0.98x (908 -> 889 pairs/s, within the run-to-run spread). Only the memory order changes:
-shapes, state dicts and exported tensors are the same.
+Convolutions in channels-last layout (N, H, W, C in memory; N, D, H, W, C in 3-D) are faster on
+a CPU for U-Nets and the same for narrow networks, with the same results up to float rounding.
+Measured with ``tools/bench_pretrain.py --roof`` on 2 cores (forward + backward + AdamW): the 2-D
+U-Net encoder (width 16, depth 4, 128 x 64^2) 1.27x, the 3-D one (width 8, depth 4, 32 x 32^3)
+1.28x, 3-D fine-tuning of the whole U-Net (2 x 64^3) 1.54x, 2-D fine-tuning at the benchmark's
+batch of 8 0.98x (no change), whole-slice inference 1.31x; the narrow ResNet 0.98x. Only the
+memory order changes: shapes, state dicts and exported tensors are the same. A single-channel
+batch has the same memory in both layouts, so grayscale views need no conversion.
 """
 from __future__ import annotations
 
