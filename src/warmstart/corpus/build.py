@@ -30,7 +30,7 @@ from ..volumes import Candidate, describe_failure, discover, open_volume
 from .manifest import build_manifest
 from .sampling import PatchFilter, background_level, downscale_factors, extract_patches, plan_patches, source_seed
 from .settings import CorpusSettings
-from .store import INDEX_COLUMNS, CodeHistogram, StoreWriter, encode
+from .store import CUBE, INDEX_COLUMNS, CodeHistogram, StoreWriter, encode
 
 __all__ = ["build_corpus", "BuildResult", "process_source", "source_parts", "merge_parts", "parse_shard", "EXIT_SKIPPED"]
 
@@ -193,24 +193,27 @@ def _sample_volume(vol: Any, ref: Any, plan: Any, factors: tuple[float, float, f
     the index columns of the kept patches.
     """
     k, p = s.sampling.channels, s.sampling.patch_size
+    cubes = s.sampling.spatial_dims == 3
     filt = PatchFilter(s.filters, background_level(ref, s.filters))
     stats = CodeHistogram()
     enc = s.encoding()
     qerr = {"max_abs_error": 0.0, "clipped": 0}
     cols: dict[str, list[np.ndarray]] = {c: [] for c in INDEX_COLUMNS}
-    # in-plane downscale factor of a patch sliced along Z, Y, X
+    # in-plane downscale factor of a patch sliced along Z, Y, X; the mean of all three for a cube
     inplane = np.array([(factors[1] + factors[2]) / 2, (factors[0] + factors[2]) / 2, (factors[0] + factors[1]) / 2])
+    if cubes:
+        inplane[0] = sum(factors) / 3
     with open(staging, "wb") as fh:
-        for patches, idx in extract_patches(vol.read, vol.shape, vol.dtype.itemsize, plan, (k, p, p), ref.apply, filt,
-                                            s.memory_mb * 2**20 // 4):
+        for patches, idx in extract_patches(vol.read, vol.shape, vol.dtype.itemsize, plan, (p, p, p) if cubes else (k, p, p),
+                                            ref.apply, filt, s.memory_mb * 2**20 // 4):
             codes, err = encode(patches, enc)
             fh.write(codes.tobytes())
             stats.update(codes)
             qerr = {"max_abs_error": max(qerr["max_abs_error"], err["max_abs_error"]),
                     "clipped": qerr["clipped"] + err["clipped"]}
             axis, start = plan.axis[idx], plan.start[idx]
-            for c, values in (("source", np.full(len(idx), pos)), ("axis", axis), ("z", start[:, 0]),
-                              ("y", start[:, 1]), ("x", start[:, 2]), ("scale", inplane[axis])):
+            for c, values in (("source", np.full(len(idx), pos)), ("axis", np.full(len(idx), CUBE) if cubes else axis),
+                              ("z", start[:, 0]), ("y", start[:, 1]), ("x", start[:, 2]), ("scale", inplane[axis])):
                 cols[c].append(values)
     columns = {c: (np.concatenate(v) if v else np.empty(0)) for c, v in cols.items()}
     return filt.counts.to_dict(), stats.summary(enc, *s.histogram_range()), qerr, columns
@@ -276,8 +279,8 @@ def build_corpus(
     _prepare_output(out, fresh)
     if (out / "manifest.json").exists():
         raise CorpusError(f"{out}: a finished corpus is already there; use --fresh to rebuild or a new folder")
-    k, p = s.sampling.channels, s.sampling.patch_size
-    writer = StoreWriter(out, build, s.store, (k, p, p))
+    shape = s.sampling.patch_shape
+    writer = StoreWriter(out, build, s.store, shape)
     done = writer.recover()
     if [r["position"] for r in done] != chosen[: len(done)]:
         raise CorpusError(f"{out}: journal does not match the source list; rebuild with --fresh")
@@ -292,7 +295,7 @@ def build_corpus(
                   "staging": str(staging)} for j in range(n)]
     bar = progress_bar(total=len(chosen), initial=len(done), desc="corpus: sources", unit="src", disable=not progress, leave=False)
     code_dtype = np.dtype(np.float16 if s.store.dtype == "float16" else np.uint16)
-    assembler = _SourceAssembler(writer, code_dtype, (k, p, p), 8 * s.store.chunk_patches)
+    assembler = _SourceAssembler(writer, code_dtype, shape, 8 * s.store.chunk_patches)
     n_patches = sum(r["stop"] - r["start"] for r in done)
 
     def commit(rec: dict[str, Any]) -> None:

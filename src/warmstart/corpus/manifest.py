@@ -49,6 +49,8 @@ def _source_entry(r: dict[str, Any], s: CorpusSettings) -> dict[str, Any]:
             modality=s.read.modality_of(r["name"]) or vol["meta"].get("modality"),
             patch_mean=r["stats"]["sum"] / r["stats"]["n"] if r["stats"]["n"] else None,
         )
+        if s.sampling.spatial_dims == 3:  # the cubes' voxel shape was read or stated, or assumed
+            entry["voxels_assumed_cubic"] = any(v is None for v in vol["voxel_size_um"])
     return entry
 
 
@@ -72,7 +74,9 @@ def build_manifest(build: dict[str, Any], records: list[dict[str, Any]], s: Corp
         "archive": build["archive"],
         "shard": build["shard"],
         "settings": s.identity(),
-        "patches": {"count": int(patches_shape[0]), "shape": list(patches_shape[1:]), "encoding": encoding,
+        "patches": {"count": int(patches_shape[0]), "shape": list(patches_shape[1:]),
+                    "spatial_dims": s.sampling.spatial_dims, "axis_order": "ZYX" if s.sampling.spatial_dims == 3 else "YX",
+                    "encoding": encoding,
                     "chunk_patches": s.store.chunk_patches, "quantization": qnote},
         "statistics": stats,
         "counts": {"sources": len(records), "sources_ok": len(ok), "sources_failed": len(records) - len(ok), **totals},

@@ -1,7 +1,7 @@
 """The corpus report: what a person looks at before spending hours of pretraining on a corpus.
 
-``report/`` holds, per source, a montage of random patches (``montage_NNNN.png``, centre channel,
-grey levels stretched over the montage's 1-99 % range) and the intensity histogram before
+``report/`` holds, per source, a montage of random patches (``montage_NNNN.png``, centre channel;
+for 3-D cubes the central Z, Y and X planes of a quarter as many cubes, three cubes per row; grey levels stretched over the montage's 1-99 % range) and the intensity histogram before
 (raw sample) and after normalization (stored patches) (``hist_NNNN.png``); and for the corpus a
 ``summary.md`` and ``summary.json``.
 """
@@ -17,7 +17,7 @@ import numpy as np
 from ..base.atomic import write_json
 from .store import open_corpus
 
-__all__ = ["write_report", "montage", "summary_rows", "shown_name", "SUMMARY_COLUMNS", "summary_cells"]
+__all__ = ["write_report", "montage", "cube_planes", "summary_rows", "shown_name", "SUMMARY_COLUMNS", "summary_cells"]
 
 # The per-source table, with the same headings in ``corpus show`` and in ``report/summary.md``.
 SUMMARY_COLUMNS = ("#", "source", "format", "modality", "shape (ZYX)", "voxel µm (ZYX)", "scheme", "planned", "kept",
@@ -36,10 +36,16 @@ def montage(patches: np.ndarray, columns: int = 8, gap: int = 2) -> np.ndarray:
     return out
 
 
-def _save_montage(path: Path, tiles: np.ndarray) -> None:
+def cube_planes(cubes: np.ndarray) -> np.ndarray:
+    """(N, P, P, P) cubes in (Z, Y, X) order -> (3N, P, P): each cube's central Z, Y and X planes."""
+    c = cubes.shape[1] // 2
+    return np.stack([cubes[:, c], cubes[:, :, c], cubes[:, :, :, c]], axis=1).reshape(-1, *cubes.shape[2:])
+
+
+def _save_montage(path: Path, tiles: np.ndarray, columns: int = 8) -> None:
     import matplotlib.image as mpimg
 
-    grid = montage(tiles)
+    grid = montage(tiles, columns)
     finite = grid[np.isfinite(grid)]
     lo, hi = (np.percentile(finite, [1, 99]) if finite.size else (0.0, 1.0))
     img = np.clip((grid - lo) / (hi - lo if hi > lo else 1.0), 0, 1)
@@ -134,11 +140,14 @@ def write_report(corpus: str | os.PathLike[str], *, patches_per_source: int = 64
         pos = e["position"]
         names = {}
         if b > a:
-            idx = np.sort(rng.choice(np.arange(a, b), size=min(patches_per_source, b - a), replace=False))
+            shown = patches_per_source // 4 if store.spatial_dims == 3 else patches_per_source  # 3 planes per cube
+            idx = np.sort(rng.choice(np.arange(a, b), size=min(shown, b - a), replace=False))
             tiles = store.take(idx)
-            tiles = tiles[:, tiles.shape[1] // 2]
             names["montage"] = f"montage_{pos:04d}.png"
-            _save_montage(out / names["montage"], tiles)
+            if tiles.ndim == 5:  # cubes: the central Z, Y and X planes of each, side by side
+                _save_montage(out / names["montage"], cube_planes(tiles[:, 0]), columns=9)
+            else:
+                _save_montage(out / names["montage"], tiles[:, tiles.shape[1] // 2])
         names["histograms"] = f"hist_{pos:04d}.png"
         _save_histograms(out / names["histograms"], e, journal[pos]["stats"] if pos in journal else {"range": [0, 1], "counts": []})
         files[pos] = names

@@ -19,6 +19,7 @@ from typing import Any, Callable, Iterator
 
 import numpy as np
 
+from ..errors import VolumeReadError
 from .resample import resample_block
 from .settings import FilterSettings, SamplingSettings
 
@@ -44,10 +45,34 @@ def downscale_factors(voxel_size_um: tuple[float | None, ...], s: SamplingSettin
     >>> downscale_factors((None, None, None), SamplingSettings(scale_factor=2.0), shape=(1, 512, 512))[0]
     (1.0, 2.0, 2.0)
     """
-    factors, notes = _factors(voxel_size_um, s)
-    if shape is not None:
+    factors, notes = _cube_factors(voxel_size_um, s) if s.spatial_dims == 3 else _factors(voxel_size_um, s)
+    if shape is not None and s.spatial_dims == 2:
         factors = tuple(1.0 if f > 1 and n < f else f for f, n in zip(factors, shape))  # type: ignore[assignment]
     return factors, notes
+
+
+def _cube_factors(voxel_size_um: tuple[float | None, ...], s: SamplingSettings) -> tuple[tuple[float, float, float], list[str]]:
+    """Factors that make voxels cubic for 3-D cubes: never below 1 along the coarsest axis (no
+    resolution is invented), so a target finer than the coarsest voxel is raised to it."""
+    unknown = [ax for ax, v in zip("ZYX", voxel_size_um) if v is None or not v > 0]
+    if unknown:
+        if not s.assume_cubic_voxels:
+            raise VolumeReadError(
+                f"voxel size unknown along {', '.join(unknown)}: 3-D cubes need cubic voxels; state the size with "
+                "read.voxel_size_um = [z, y, x] (micrometres) or set sampling.assume_cubic_voxels = true")
+        return (s.scale_factor,) * 3, ["voxel size unknown: voxels assumed cubic (sampling.assume_cubic_voxels)"]
+    sizes = [float(v) for v in voxel_size_um]  # type: ignore[arg-type]
+    coarsest = max(sizes)
+    notes = []
+    if s.target_voxel_um is None:
+        voxel = s.scale_factor * coarsest
+    else:
+        voxel = max(s.target_voxel_um, coarsest)
+        if voxel > s.target_voxel_um:
+            notes.append(f"target voxel {s.target_voxel_um:g} um is finer than the coarsest axis ({coarsest:g} um): "
+                         f"cubes use {voxel:g} um voxels, nothing is upsampled")
+    f = [voxel / v for v in sizes]
+    return (f[0], f[1], f[2]), notes
 
 
 def _factors(voxel_size_um: tuple[float | None, ...], s: SamplingSettings) -> tuple[tuple[float, float, float], list[str]]:
@@ -138,11 +163,14 @@ def plan_patches(shape: tuple[int, int, int], factors: tuple[float, float, float
     p, k = s.patch_size, s.channels
     stride = s.stride or p
     axes_l, starts, extent = [], [], {}
-    for letter in s.axes:
+    # A cube is planned as a block "sliced along Z" whose P output slices are its depth: the same
+    # region reads, resampling and filters then serve both.
+    for letter in ("Z" if s.spatial_dims == 3 else s.axes):
         a = _AXIS_INDEX[letter]
         u, v = _INPLANE[a]
+        depth, depth_step = (p, stride) if s.spatial_dims == 3 else (k, s.slice_stride)
         ext = [0, 0, 0]
-        ext[a] = max(1, round(k * factors[a]))
+        ext[a] = max(1, round(depth * factors[a]))
         ext[u] = max(1, round(p * factors[u]))
         ext[v] = max(1, round(p * factors[v]))
         if any(e > n for e, n in zip(ext, shape)):
@@ -150,7 +178,7 @@ def plan_patches(shape: tuple[int, int, int], factors: tuple[float, float, float
         extent[a] = tuple(ext)
         if s.mode == "grid":
             steps = [0, 0, 0]
-            steps[a] = max(1, round(s.slice_stride * factors[a]))
+            steps[a] = max(1, round(depth_step * factors[a]))
             steps[u] = max(1, round(stride * factors[u]))
             steps[v] = max(1, round(stride * factors[v]))
             grids = [_positions(n, e, st) for n, e, st in zip(shape, ext, steps)]

@@ -72,7 +72,17 @@ class SamplingSettings:
     Parameters
     ----------
     patch_size : int
-        Output patch side in pixels (after resampling).
+        Output patch side in pixels (after resampling); the cube side in 3-D.
+    spatial_dims : {2, 3}
+        2: square patches (C, P, P) sliced along ``axes``. 3: cubes (1, P, P, P) in (Z, Y, X)
+        order, cut after resampling every source to cubic voxels (the finer axes are averaged
+        down to the coarsest, or to ``target_voxel_um`` where that is coarser; nothing is
+        upsampled); ``axes``, ``channels`` and ``slice_stride`` do not apply, ``stride`` steps
+        along all three axes. A source whose voxel size is unknown is refused in 3-D unless
+        ``read.voxel_size_um`` states it or ``assume_cubic_voxels`` is set.
+    assume_cubic_voxels : bool
+        3-D only: treat voxels of unknown size as cubic (each axis then takes ``scale_factor``);
+        the manifest records, per source, that the shape was assumed.
     axes : str
         Slicing axes, any of ``Z``, ``Y``, ``X`` (``"ZYX"`` slices along all three).
     channels : int
@@ -100,6 +110,8 @@ class SamplingSettings:
     """
 
     patch_size: int = 128
+    spatial_dims: int = 2
+    assume_cubic_voxels: bool = False
     axes: str = "Z"
     channels: int = 1
     target_voxel_um: float | None = None
@@ -124,6 +136,16 @@ class SamplingSettings:
         if not self.scale_factor > 0 or (self.target_voxel_um is not None and not self.target_voxel_um > 0):
             raise RecipeError("sampling.scale_factor and sampling.target_voxel_um must be positive")
         require_positive(self, "sampling", "slice_stride", "count", "max_per_source", "stride")
+        if self.spatial_dims not in (2, 3):
+            raise RecipeError(f"sampling.spatial_dims must be 2 or 3, got {self.spatial_dims!r}")
+        if self.spatial_dims == 3 and self.channels != 1:
+            raise RecipeError("sampling.channels stacks slices of 2-D patches; 3-D cubes (spatial_dims = 3) take channels = 1")
+
+    @property
+    def patch_shape(self) -> tuple[int, ...]:
+        """Shape of one stored patch: (C, P, P) in 2-D, (1, P, P, P) in 3-D."""
+        p = self.patch_size
+        return (1, p, p, p) if self.spatial_dims == 3 else (self.channels, p, p)
 
 
 @dataclass(frozen=True)

@@ -3,8 +3,11 @@
 Layout of ``CORPUS/`` (a folder ending in ``.zarr`` by convention)::
 
     zarr.json            zarr group metadata
-    patches/             (N, C, P, P) float16 or uint16, chunked along N
-    index/<column>/      (N,) one array per column: source, axis, z, y, x, scale
+    patches/             (N, C, P, P) float16 or uint16, chunked along N; (N, 1, P, P, P) cubes in
+                         (Z, Y, X) order for a 3-D corpus (manifest ``patches.spatial_dims``)
+    index/<column>/      (N,) one array per column: source, axis (0/1/2: sliced along Z/Y/X;
+                         3: a cube), z, y, x (block start in source voxels), scale (mean
+                         downscale factor of the patch's axes)
     build.json           what the build was asked to do: settings, archive, source list, shard
     journal/NNNNNN.json  one record per finished source (ok or failed), written last
     manifest.json        sources, intensity references, patch statistics (written at the end)
@@ -31,7 +34,7 @@ from ..base.atomic import write_json
 from ..errors import CorpusError
 from .settings import StoreSettings
 
-__all__ = ["CorpusStore", "StoreWriter", "CodeHistogram", "open_corpus", "encode", "decode", "quantization_note", "INDEX_COLUMNS",
+__all__ = ["CorpusStore", "StoreWriter", "CodeHistogram", "open_corpus", "encode", "decode", "quantization_note", "INDEX_COLUMNS", "CUBE",
            "STORE_VERSION", "CORPUS_FORMAT", "upgrade_manifest"]
 
 # The manifest says what it is the same way as an encoder file's: ``format`` and ``format_version``.
@@ -41,6 +44,7 @@ __all__ = ["CorpusStore", "StoreWriter", "CodeHistogram", "open_corpus", "encode
 STORE_VERSION = 2
 CORPUS_FORMAT = "warmstart-corpus"
 _READABLE = (1, 2)
+CUBE = 3  # the index's axis code of a 3-D cube (no slicing axis)
 INDEX_COLUMNS = {"source": "int32", "axis": "int8", "z": "int32", "y": "int32", "x": "int32", "scale": "float32"}
 
 
@@ -68,6 +72,8 @@ def upgrade_manifest(m: dict[str, Any]) -> dict[str, Any]:
             e.setdefault("modality", (e.get("meta") or {}).get("modality"))
     ok = [e for e in sources if e.get("status") == "ok"]
     old = m.get("voxel_size_um", {})
+    if "patches" in m:
+        m["patches"] = {"spatial_dims": 2, **m["patches"]}
     m.update(format=CORPUS_FORMAT, format_version=STORE_VERSION, sources=sources,
              voxel_size_um=voxel_section(ok, old.get("patch"), old.get("unknown_sources", 0)),
              modalities=sorted({e["modality"] for e in ok if e.get("modality")}),
@@ -257,8 +263,13 @@ class CorpusStore:
     def encoding(self) -> dict[str, Any]:
         return self.manifest["patches"]["encoding"]
 
+    @property
+    def spatial_dims(self) -> int:
+        """2 for (N, C, P, P) patches, 3 for (N, 1, P, P, P) cubes."""
+        return int(self.manifest["patches"].get("spatial_dims", 2))
+
     def read(self, start: int = 0, stop: int | None = None) -> np.ndarray:
-        """Patches ``start:stop`` as normalized float32 (N, C, P, P)."""
+        """Patches ``start:stop`` as normalized float32 (N, C, P, P), or (N, 1, P, P, P) cubes."""
         return decode(self.patches[start:stop], self.encoding)
 
     def take(self, indices: np.ndarray) -> np.ndarray:

@@ -221,6 +221,9 @@ def pretrain(corpus: str | os.PathLike[str], out: str | os.PathLike[str], settin
     out.mkdir(parents=True, exist_ok=True)
     first_process = _first_process()
     store = open_corpus(corpus)
+    if store.spatial_dims == 3:  # the 3-D views and methods are not in this version yet
+        raise PretrainError(f"{corpus}: a corpus of 3-D cubes; this warmstart pretrains on 2-D patches only "
+                            "(build the corpus with sampling.spatial_dims = 2)")
     names = {e["name"]: e["position"] for e in store.manifest["sources"]}
     unknown = sorted(set(s.source_weights) - set(names))
     if unknown:
