@@ -146,14 +146,3 @@ def test_a_2d_manifest_says_2_spatial_dims(tmp_path):
 
     assert open_corpus(tiny_corpus(tmp_path, n=1)).spatial_dims == 2
 
-
-def test_pretraining_names_a_cube_corpus_it_cannot_train_on_yet(tmp_path):
-    from warmstart.errors import PretrainError
-    from warmstart.pretrain.loop import pretrain
-
-    (tmp_path / "a").mkdir()
-    np.save(tmp_path / "a" / "vol.npy", textured(shape=(16, 32, 32), seed=1))
-    res = build_corpus(tmp_path / "a", tmp_path / "c.zarr", _cube_settings((1.0, 1.0, 1.0)), report=False, progress=False)
-    with pytest.raises(PretrainError, match="3-D cubes.*spatial_dims = 2"):
-        pretrain(res.path, tmp_path / "run", progress=False)
-    assert not (tmp_path / "run" / "recipe.json").exists()

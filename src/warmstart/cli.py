@@ -319,7 +319,8 @@ def cmd_corpus_show(args: argparse.Namespace) -> int:
                      **({"verify": {"damaged": damaged, "unchecked": unchecked}} if args.verify else {})})
     else:
         st, c = m["statistics"], m["counts"]
-        print(f"{store.path}: {m['patches']['count']} patches {m['patches']['shape']} ({m['patches']['encoding']['dtype']}), "
+        kind = "3-D cubes (ZYX)" if store.spatial_dims == 3 else "patches"
+        print(f"{store.path}: {m['patches']['count']} {kind} {m['patches']['shape']} ({m['patches']['encoding']['dtype']}), "
               f"{c['sources_ok']} sources used, {c['sources_failed']} skipped")
         if st["mean"] is not None:
             print(f"normalized values: mean {st['mean']:.4f}, std {st['std']:.4f}")

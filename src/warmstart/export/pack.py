@@ -153,6 +153,10 @@ def export_encoder(run: str | os.PathLike[str], out: str | os.PathLike[str], *, 
     if not ckpt_path.is_file():
         raise ExportError(f"{ckpt_path}: no checkpoint to export (has the run in {run} started?)")
     corpus, corpus_path = _corpus_manifest(run)
+    if int((corpus.get("patches") or {}).get("spatial_dims", 2)) == 3:
+        # The encoder file's manifest describes 2-D inputs; the 3-D fields come with 3-D export.
+        raise ExportError(f"{run}: a 3-D run (pretrained on cubes); this warmstart exports 2-D encoders only, "
+                          "and the checkpoint stays usable in checkpoints/")
     try:
         ckpt = torch.load(ckpt_path, map_location="cpu", weights_only=True)
     except Exception as e:

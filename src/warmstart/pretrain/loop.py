@@ -69,12 +69,12 @@ class PretrainModule(pl.LightningModule):
         step = int(self.global_step)
         g = torch.Generator(device=batch.device)
         g.manual_seed(_step_seed(self.s.seed, step, self.global_rank))
-        b, size = batch.shape[0], batch.shape[-1]  # (B, C, P, P)
+        b, size, dims = batch.shape[0], batch.shape[-1], batch.dim() - 2  # (B, C, P, P) or (B, 1, P, P, P)
         # Views in float32 whatever the training precision: cheap next to the model, and exact.
         with torch.autocast(device_type=batch.device.type, enabled=False):
-            p1 = draw_params(b, size, self.view1, g, batch.device)
+            p1 = draw_params(b, size, self.view1, g, batch.device, dims)
             x1 = apply_view(batch.float(), p1, g)
-            p2 = draw_params(b, size, self.view2, g, batch.device)
+            p2 = draw_params(b, size, self.view2, g, batch.device, dims)
             x2 = apply_view(batch.float(), p2, g)
             x1, x2 = self.standardized(x1), self.standardized(x2)
             original = self.standardized(batch.float())
@@ -221,9 +221,7 @@ def pretrain(corpus: str | os.PathLike[str], out: str | os.PathLike[str], settin
     out.mkdir(parents=True, exist_ok=True)
     first_process = _first_process()
     store = open_corpus(corpus)
-    if store.spatial_dims == 3:  # the 3-D views and methods are not in this version yet
-        raise PretrainError(f"{corpus}: a corpus of 3-D cubes; this warmstart pretrains on 2-D patches only "
-                            "(build the corpus with sampling.spatial_dims = 2)")
+    s = _for_spatial_dims(s, store.spatial_dims, corpus)
     names = {e["name"]: e["position"] for e in store.manifest["sources"]}
     unknown = sorted(set(s.source_weights) - set(names))
     if unknown:
@@ -309,6 +307,33 @@ def pretrain(corpus: str | os.PathLike[str], out: str | os.PathLike[str], settin
     if trainer.is_global_zero:
         write_json(out / SUMMARY, summary)
     return PretrainResult(out, int(trainer.global_step), summary["final_loss"], summary)
+
+
+# Methods whose 3-D form exists (restoration and combined need 3-D corruptions, still to come).
+_METHODS_3D = ("simclr", "moco_v2", "byol", "dense")
+
+
+def _for_spatial_dims(s: PretrainSettings, dims: int, corpus: Any) -> PretrainSettings:
+    """The settings with the encoder built for the corpus's spatial dims (recorded in the run's
+    recipe.json), or a clear refusal of an encoder or method that has no 3-D form."""
+    import inspect
+
+    from ..encoders.registry import ENCODERS
+
+    stated = s.encoder_params.get("spatial_dims")
+    if dims == 2:
+        if stated not in (None, 2):
+            raise PretrainError(f"{corpus}: a corpus of 2-D patches, but pretrain.encoder_params sets spatial_dims = {stated}")
+        return s
+    if s.encoder in ENCODERS and "spatial_dims" not in inspect.signature(ENCODERS[s.encoder]).parameters:
+        raise PretrainError(f"{corpus}: a corpus of 3-D cubes, and encoder {s.encoder!r} is 2-D only; "
+                            "use pretrain.encoder = \"unet\" for 3-D")
+    if stated not in (None, 3):
+        raise PretrainError(f"{corpus}: a corpus of 3-D cubes, but pretrain.encoder_params sets spatial_dims = {stated}")
+    if s.method not in _METHODS_3D:
+        raise PretrainError(f"{corpus}: method {s.method!r} has no 3-D form yet; for 3-D cubes use one of "
+                            f"{', '.join(_METHODS_3D)}")
+    return dataclasses.replace(s, encoder_params={**s.encoder_params, "spatial_dims": 3})
 
 
 def _standardization(manifest: dict[str, Any], s: PretrainSettings) -> tuple[float, float]:

@@ -34,10 +34,12 @@ __all__ = ["DenseContrast", "sample_at"]
 
 
 def sample_at(features: torch.Tensor, points: torch.Tensor) -> torch.Tensor:
-    """Bilinear read of (B, C, h, w) feature maps at (B, K, 2) ``(y, x)`` fractions -> (B, K, C)."""
-    grid = torch.stack([points[..., 1], points[..., 0]], -1)[:, :, None] * 2 - 1  # x first, [-1, 1]
-    return F.grid_sample(features, grid.to(features.dtype), mode="bilinear", padding_mode="border",
-                         align_corners=False)[..., 0].transpose(1, 2)
+    """(Bi/tri)linear read of (B, C, h, w) or (B, C, d, h, w) feature maps at (B, K, 2) ``(y, x)``
+    or (B, K, 3) ``(z, y, x)`` fractions -> (B, K, C)."""
+    n = points.shape[-1]
+    grid = (points.flip(-1) * 2 - 1).reshape(points.shape[0], points.shape[1], *([1] * (n - 1)), n)  # x first, [-1, 1]
+    out = F.grid_sample(features, grid.to(features.dtype), mode="bilinear", padding_mode="border", align_corners=False)
+    return out.reshape(out.shape[0], out.shape[1], -1).transpose(1, 2)
 
 
 @register_method("dense")
@@ -61,7 +63,7 @@ class DenseContrast(Method):
     def dense_pairs(self, f1: torch.Tensor, f2: torch.Tensor, views: Views) -> tuple[torch.Tensor, torch.Tensor]:
         """Matched (N, C) features: every cell centre of view 1's map and the same place in view 2."""
         pts1, pts2, valid = matched_points(views.params1, views.params2, grid=f1.shape[-1])
-        a = f1.flatten(2).transpose(1, 2)  # (B, h*w, C): the cells themselves, centres = pts1
+        a = f1.flatten(2).transpose(1, 2)  # (B, h*w[*d], C): the cells themselves, centres = pts1
         b = sample_at(f2, pts2)
         a, b = a[valid], b[valid]
         if len(a) > self.max_points:
@@ -74,7 +76,7 @@ class DenseContrast(Method):
         if views is None:
             raise ValueError("dense needs the views' geometry (Views)")
         f1, f2 = self.encoder(view1)[-1], self.encoder(view2)[-1]
-        g1, g2 = f1.mean(dim=(-2, -1)), f2.mean(dim=(-2, -1))
+        g1, g2 = f1.flatten(2).mean(-1), f2.flatten(2).mean(-1)
         total = (1 - self.dense_weight) * self.criterion(self.head(g1), self.head(g2))
         a, b = self.dense_pairs(f1, f2, views)
         if len(a) >= 2 and self.dense_weight > 0:
