@@ -1,5 +1,5 @@
-"""Pretraining on 3-D corpora: every method with a 3-D form runs on cubes, resumes exactly, and
-what has no 3-D form yet is refused by name."""
+"""Pretraining on 3-D corpora: every method runs on cubes (3-D corruptions included), resumes
+exactly, and an encoder with no 3-D form is refused by name."""
 from __future__ import annotations
 
 import csv
@@ -38,7 +38,7 @@ def _losses(run: Path) -> dict[int, float]:
 
 
 @pytest.mark.parametrize("method,params", [("simclr", {}), ("moco_v2", {"queue_size": 16}), ("byol", {}),
-                                           ("dense", {"max_points": 64})])
+                                           ("dense", {"max_points": 64}), ("restore", {})])
 def test_every_3d_method_trains_a_3d_encoder(cubes, tmp_path, method, params):
     res = pretrain(cubes, tmp_path / "run", PretrainSettings(max_steps=3, method=method, method_params=params, **FAST),
                    progress=False)
@@ -71,8 +71,6 @@ def test_what_has_no_3d_form_is_refused_by_name(cubes, tmp_path):
     with pytest.raises(PretrainError, match="'resnet_narrow' is 2-D only"):
         pretrain(cubes, tmp_path / "r1", PretrainSettings(**{**FAST, "encoder": "resnet_narrow", "encoder_params": {}}),
                  progress=False)
-    with pytest.raises(PretrainError, match="method 'restore' has no 3-D form yet"):
-        pretrain(cubes, tmp_path / "r2", PretrainSettings(method="restore", **FAST), progress=False)
     flat = tiny_corpus(tmp_path / "flat", n=1)
     with pytest.raises(PretrainError, match="2-D patches, but .* spatial_dims = 3"):
         pretrain(flat, tmp_path / "r3", PretrainSettings(**{**FAST, "encoder_params": {"spatial_dims": 3}}), progress=False)
@@ -101,3 +99,52 @@ def test_smoke_3d_recipe_runs_end_to_end_from_the_command_line(tmp_path, capsys)
     assert "10 steps of simclr on unet" in out
     m = json.loads((tmp_path / "c.zarr" / "manifest.json").read_text())
     assert m["patches"]["shape"] == [1, 16, 16, 16] and m["sources"][0]["downscale_factors"] == [2.0, 4.0, 4.0]
+
+
+def test_local_shuffle_in_3d_only_permutes_voxels_inside_cubic_tiles():
+    from warmstart.pretrain.corrupt import local_shuffle
+
+    x = torch.arange(2 * 10 * 10 * 10, dtype=torch.float32).reshape(2, 1, 10, 10, 10)
+    out = local_shuffle(x, torch.tensor([True, False]), torch.Generator().manual_seed(4), block=3, fraction=0.6)
+    oz, oy, ox = (int(v) for v in torch.randint(0, 3, (3,), generator=torch.Generator().manual_seed(4)))
+    assert torch.equal(out[1], x[1]) and not torch.equal(out[0], x[0])
+    ends = [o + ((10 - o) // 3) * 3 for o in (oz, oy, ox)]
+    changed = 0
+    for tz in range(oz, ends[0], 3):
+        for ty in range(oy, ends[1], 3):
+            for tx in range(ox, ends[2], 3):
+                a, b = x[0, 0, tz:tz + 3, ty:ty + 3, tx:tx + 3], out[0, 0, tz:tz + 3, ty:ty + 3, tx:tx + 3]
+                assert torch.equal(a.flatten().sort().values, b.flatten().sort().values)  # same voxels, new places
+                changed += int(not torch.equal(a, b))
+    assert changed > 0
+    inside = torch.zeros(10, 10, 10, dtype=torch.bool)
+    inside[oz:ends[0], oy:ends[1], ox:ends[2]] = True
+    assert torch.equal(out[0, 0][~inside], x[0, 0][~inside])
+
+
+@pytest.mark.parametrize("share,low,high", [(0.0, 0.004, 0.4), (1.0, 0.3, 0.99)])
+def test_painting_in_3d_replaces_boxes_or_the_rest(share, low, high):
+    from warmstart.pretrain.corrupt import bezier_remap, paint
+
+    x = torch.zeros(8, 1, 21, 21, 21)
+    x[:, :, 0, 0, 0], x[:, :, 0, 0, 1] = -1.0, 1.0
+    out = paint(x, torch.ones(8, dtype=torch.bool), torch.Generator().manual_seed(3), share, boxes=5)
+    changed = (out != x).float().mean(dim=(1, 2, 3, 4))
+    assert bool(((changed > low) & (changed < high)).all()), changed
+    assert out.min() >= -1 and out.max() <= 1
+    assert torch.equal(paint(x, torch.zeros(8, dtype=torch.bool), torch.Generator(), share, 5), x)
+    # the intensity curve is monotone: every cube keeps the order of its voxel values
+    v = torch.randn(3, 1, 6, 6, 6, generator=torch.Generator().manual_seed(1))
+    r = bezier_remap(v, torch.ones(3, dtype=torch.bool), torch.Generator().manual_seed(2))
+    for i in range(3):
+        order = v[i].flatten().argsort()
+        assert bool((r[i].flatten()[order].diff() >= -1e-6).all())
+
+
+def test_restoration_trains_a_3d_decoder(cubes, tmp_path):
+    s = PretrainSettings(max_steps=2, method="combined",
+                         method_params={"contrastive": "dense", "contrastive_params": {"max_points": 64}}, **FAST)
+    res = pretrain(cubes, tmp_path / "run", s, progress=False)
+    ck = torch.load(res.path / "checkpoints" / "last.ckpt", weights_only=True)["state_dict"]
+    head = next(v for k, v in ck.items() if k.endswith("restore_head.weight"))
+    assert head.dim() == 5 and all(np.isfinite(v) for v in _losses(res.path).values())

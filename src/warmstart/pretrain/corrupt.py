@@ -2,7 +2,8 @@
 
 A network that restores the original from a corrupted patch has to learn intensity appearance
 (non-linear remapping), local texture (pixel shuffling) and context (in- and out-painting).
-Every transform is per sample, drawn from a ``torch.Generator``, and works on tensors (CPU or GPU).
+Every transform is per sample, drawn from a ``torch.Generator``, and works on tensors (CPU or GPU),
+on 2-D patches (B, C, P, P) and on 3-D cubes (B, C, P, P, P) alike (blocks and boxes in 3-D).
 Written here because no maintained library offers these four as batched tensor transforms with
 a caller-supplied generator (which resumable, rank-aware training needs).
 
@@ -15,6 +16,7 @@ arXiv:1908.06912. The default probabilities follow the configuration released wi
 """
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import torch
@@ -32,7 +34,7 @@ class CorruptionSettings:
         Remap intensities through a random monotone cubic Bézier curve.
     shuffle_prob, shuffle_block, shuffle_fraction : float, int, float
         Permute the pixels inside ``shuffle_fraction`` of the ``shuffle_block`` x
-        ``shuffle_block`` blocks of a patch.
+        ``shuffle_block`` (x ``shuffle_block``) blocks of a patch.
     paint_prob, outpaint_share : float, float
         Paint a patch; a painted patch is out-painted with probability ``outpaint_share``
         (everything outside a few boxes replaced by noise), else in-painted (a few boxes
@@ -65,8 +67,9 @@ def bezier_remap(x: torch.Tensor, select: torch.Tensor, g: torch.Generator, knot
     unchanged.
     """
     b = x.shape[0]
-    lo = x.amin(dim=(1, 2, 3), keepdim=True)
-    hi = x.amax(dim=(1, 2, 3), keepdim=True)
+    every = tuple(range(1, x.dim()))
+    lo = x.amin(dim=every, keepdim=True)
+    hi = x.amax(dim=every, keepdim=True)
     u = ((x - lo) / (hi - lo).clamp(min=1e-6)).reshape(b, -1)
     ctrl = torch.rand(b, 2, 2, generator=g, device=x.device)  # (B, point, (x, y))
     t = torch.linspace(0, 1, knots, device=x.device)[None]
@@ -80,58 +83,72 @@ def bezier_remap(x: torch.Tensor, select: torch.Tensor, g: torch.Generator, knot
     y0, y1 = by.gather(1, i - 1), by.gather(1, i)
     w = ((u - x0) / (x1 - x0).clamp(min=1e-9)).clamp(0, 1)
     v = (y0 + w * (y1 - y0)).reshape(x.shape) * (hi - lo) + lo
-    return torch.where(select[:, None, None, None], v, x)
+    return torch.where(select.reshape(-1, *([1] * (x.dim() - 1))), v, x)
 
 
 def local_shuffle(x: torch.Tensor, select: torch.Tensor, g: torch.Generator, block: int, fraction: float) -> torch.Tensor:
-    """Permute the pixels within a random ``fraction`` of the ``block`` x ``block`` tiles of each
-    selected sample (the tiling starts at a random offset; the edge remainder is untouched)."""
-    b, c, h, w = x.shape
-    oy, ox = (int(v) for v in torch.randint(0, block, (2,), generator=g, device=x.device))
-    ny, nx = (h - oy) // block, (w - ox) // block
-    if ny < 1 or nx < 1:
+    """Permute the voxels within a random ``fraction`` of the ``block``-sided tiles (squares, or
+    cubes in 3-D) of each selected sample (the tiling starts at a random offset; the edge
+    remainder is untouched)."""
+    b, c = x.shape[:2]
+    spatial = x.shape[2:]
+    n = len(spatial)
+    offsets = [int(v) for v in torch.randint(0, block, (n,), generator=g, device=x.device)]
+    counts = [(size - o) // block for size, o in zip(spatial, offsets)]
+    if min(counts) < 1:
         return x
-    region = x[:, :, oy:oy + ny * block, ox:ox + nx * block]
-    tiles = region.reshape(b, c, ny, block, nx, block).permute(0, 1, 2, 4, 3, 5).reshape(b, c, ny * nx, block * block)
-    keys = torch.rand(b, ny * nx, block * block, generator=g, device=x.device)
-    chosen = (torch.rand(b, ny * nx, generator=g, device=x.device) < fraction) & select[:, None]
-    ident = torch.arange(block * block, device=x.device, dtype=torch.float32).expand_as(keys)
-    order = torch.where(chosen[..., None], keys, ident / (block * block) - 2.0).argsort(dim=-1)  # identity when not chosen
+    window = (slice(None), slice(None), *(slice(o, o + k * block) for o, k in zip(offsets, counts)))
+    split = [b, c] + [v for k in counts for v in (k, block)]  # (b, c, k1, B, k2, B[, k3, B])
+    tile_axes = [2 + 2 * i for i in range(n)]
+    inner_axes = [3 + 2 * i for i in range(n)]
+    tiles_n, cell = math.prod(counts), block**n
+    tiles = x[window].reshape(split).permute(0, 1, *tile_axes, *inner_axes).reshape(b, c, tiles_n, cell)
+    keys = torch.rand(b, tiles_n, cell, generator=g, device=x.device)
+    chosen = (torch.rand(b, tiles_n, generator=g, device=x.device) < fraction) & select[:, None]
+    ident = torch.arange(cell, device=x.device, dtype=torch.float32).expand_as(keys)
+    order = torch.where(chosen[..., None], keys, ident / cell - 2.0).argsort(dim=-1)  # identity when not chosen
     shuffled = tiles.gather(3, order[:, None].expand(b, c, -1, -1))
+    back = [0] * (2 + 2 * n)  # inverse of the permutation above
+    for j, axis in enumerate([0, 1, *tile_axes, *inner_axes]):
+        back[axis] = j
     out = x.clone()
-    out[:, :, oy:oy + ny * block, ox:ox + nx * block] = (
-        shuffled.reshape(b, c, ny, nx, block, block).permute(0, 1, 2, 4, 3, 5).reshape(b, c, ny * block, nx * block))
+    out[window] = shuffled.reshape(b, c, *counts, *([block] * n)).permute(*back).reshape(x[window].shape)
     return out
 
 
-def _boxes(b: int, n: int, size: tuple[float, float], side: int, g: torch.Generator, device: torch.device) -> torch.Tensor:
-    """(B, H, W) mask of the union of ``n`` random boxes per sample, sides in ``size`` fractions."""
-    hh = (size[0] + (size[1] - size[0]) * torch.rand(b, n, generator=g, device=device)) * side
-    ww = (size[0] + (size[1] - size[0]) * torch.rand(b, n, generator=g, device=device)) * side
-    top = torch.rand(b, n, generator=g, device=device) * (side - hh)
-    left = torch.rand(b, n, generator=g, device=device) * (side - ww)
+def _boxes(b: int, n: int, size: tuple[float, float], side: int, g: torch.Generator, device: torch.device,
+           dims: int = 2) -> torch.Tensor:
+    """(B, S, S[, S]) mask of the union of ``n`` random boxes per sample, sides in ``size`` fractions."""
+    extents = [(size[0] + (size[1] - size[0]) * torch.rand(b, n, generator=g, device=device)) * side for _ in range(dims)]
+    starts = [torch.rand(b, n, generator=g, device=device) * (side - e) for e in extents]
     keep = torch.rand(b, n, generator=g, device=device) < 0.7
     keep[:, 0] = True  # at least one box
     r = torch.arange(side, device=device, dtype=torch.float32) + 0.5
-    iny = (r[None, None] >= top[..., None]) & (r[None, None] < (top + hh)[..., None])  # (B, n, S)
-    inx = (r[None, None] >= left[..., None]) & (r[None, None] < (left + ww)[..., None])
-    return ((iny[..., :, None] & inx[..., None, :]) & keep[..., None, None]).any(dim=1)
+    mask = keep.reshape(b, n, *([1] * dims))
+    for a, (lo, e) in enumerate(zip(starts, extents)):  # a box is the product of one interval per axis
+        inside = (r[None, None] >= lo[..., None]) & (r[None, None] < (lo + e)[..., None])  # (B, n, S)
+        shape = [1] * dims
+        shape[a] = side
+        mask = mask & inside.reshape(b, n, *shape)
+    return mask.any(dim=1)
 
 
 def paint(x: torch.Tensor, select: torch.Tensor, g: torch.Generator, outpaint_share: float, boxes: int) -> torch.Tensor:
     """In-paint (boxes of 1/6 to 1/3 of the side replaced by noise) or out-paint (all but boxes of
-    3/7 to 4/7 of the side replaced by noise) each selected sample. The noise is uniform between
-    the sample's minimum and maximum."""
-    b, _, h, w = x.shape
-    if h != w:
-        raise ValueError(f"paint needs square patches, got {h} x {w}")
-    side = h
+    3/7 to 4/7 of the side replaced by noise) each selected sample (boxes are cuboids in 3-D). The
+    noise is uniform between the sample's minimum and maximum."""
+    b = x.shape[0]
+    spatial = tuple(x.shape[2:])
+    if len(set(spatial)) != 1:
+        raise ValueError(f"paint needs square patches or cubes, got {' x '.join(map(str, spatial))}")
+    side, dims = spatial[0], len(spatial)
+    every = tuple(range(1, x.dim()))
     out_mode = torch.rand(b, generator=g, device=x.device) < outpaint_share
-    inner = _boxes(b, boxes, (1 / 6, 1 / 3), side, g, x.device)
-    outer = ~_boxes(b, boxes, (3 / 7, 4 / 7), side, g, x.device)
-    mask = torch.where(out_mode[:, None, None], outer, inner) & select[:, None, None]
-    lo = x.amin(dim=(1, 2, 3), keepdim=True)
-    hi = x.amax(dim=(1, 2, 3), keepdim=True)
+    inner = _boxes(b, boxes, (1 / 6, 1 / 3), side, g, x.device, dims)
+    outer = ~_boxes(b, boxes, (3 / 7, 4 / 7), side, g, x.device, dims)
+    mask = torch.where(out_mode.reshape(-1, *([1] * dims)), outer, inner) & select.reshape(-1, *([1] * dims))
+    lo = x.amin(dim=every, keepdim=True)
+    hi = x.amax(dim=every, keepdim=True)
     noise = lo + (hi - lo) * torch.rand(x.shape, generator=g, device=x.device)
     return torch.where(mask[:, None], noise, x)
 
@@ -142,14 +159,14 @@ def corrupt(x: torch.Tensor, s: CorruptionSettings, g: torch.Generator) -> torch
 
     Parameters
     ----------
-    x : (B, C, P, P) tensor
-        The original (standardized) patches.
+    x : (B, C, P, P) or (B, C, P, P, P) tensor
+        The original (standardized) patches or cubes.
     s : CorruptionSettings
     g : torch.Generator
 
     Returns
     -------
-    (B, C, P, P) tensor
+    tensor of the same shape
     """
     b, dev = x.shape[0], x.device
     x = bezier_remap(x, _on(b, s.nonlinear_prob, g, dev), g)

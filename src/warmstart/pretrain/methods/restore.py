@@ -15,6 +15,7 @@ import torch
 import torch.nn.functional as F
 from torch import nn
 
+from ...encoders.unet import conv_type
 from ...unet import UNetDecoder
 from ..corrupt import CorruptionSettings, corrupt
 from .base import Method, Views, register_method
@@ -36,15 +37,16 @@ class Restore(Method):
         self.corruption = CorruptionSettings(nonlinear_prob, shuffle_prob, shuffle_block, shuffle_fraction, paint_prob,
                                              outpaint_share, boxes, noise_sigma)
         self.decoder_norm = decoder_norm
-        self.decoder = UNetDecoder(encoder.spec.stages, decoder_norm)
-        self.restore_head = nn.Conv2d(self.decoder.out_channels, int(encoder.spec.params.get("in_channels", 1)), 1)
+        dims = int(encoder.spec.params.get("spatial_dims", 2))
+        self.decoder = UNetDecoder(encoder.spec.stages, decoder_norm, dims)
+        self.restore_head = conv_type(dims)(self.decoder.out_channels, int(encoder.spec.params.get("in_channels", 1)), 1)
 
     def restoration_loss(self, original: torch.Tensor, g: torch.Generator) -> tuple[torch.Tensor, torch.Tensor]:
         """(loss, pooled features of the corrupted input) for one batch of original patches."""
         damaged = corrupt(original, self.corruption, g)
         feats = self.encoder(damaged)
-        restored = self.restore_head(self.decoder(feats, tuple(original.shape[-2:])))
-        return F.mse_loss(restored, original), feats[-1].mean(dim=(-2, -1))
+        restored = self.restore_head(self.decoder(feats, tuple(original.shape[2:])))
+        return F.mse_loss(restored, original), feats[-1].flatten(2).mean(-1)
 
     def loss(self, view1: torch.Tensor, view2: torch.Tensor,
              views: Views | None = None) -> tuple[torch.Tensor, dict[str, torch.Tensor]]:
