@@ -110,7 +110,7 @@ def build_parser() -> argparse.ArgumentParser:
     pre.add_argument("-o", "--output", required=True, metavar="RUN", help="run folder")
     _add_recipe_options(pre, "smoke, cpu-lowres, gpu-resnet50-moco, ...", "pretrain.lr=3e-4", read_options=False)
     g = pre.add_argument_group("common settings (shortcuts for --set)")
-    g.add_argument("--method", choices=["simclr", "moco_v2", "byol", "dense", "restore", "combined"])
+    g.add_argument("--method", choices=["simclr", "moco_v2", "byol", "dense", "restore", "combined", "masked"])
     g.add_argument("--encoder", metavar="NAME", help="encoder architecture: resnet_narrow, resnet18, resnet34, resnet50, unet")
     g.add_argument("--epochs", type=int)
     g.add_argument("--max-steps", type=int)

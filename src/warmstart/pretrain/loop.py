@@ -310,7 +310,7 @@ def pretrain(corpus: str | os.PathLike[str], out: str | os.PathLike[str], settin
 
 
 # Methods with a 3-D form (every registered one today; a new method states it here).
-_METHODS_3D = ("simclr", "moco_v2", "byol", "dense", "restore", "combined")
+_METHODS_3D = ("simclr", "moco_v2", "byol", "dense", "restore", "combined", "masked")
 
 
 def _for_spatial_dims(s: PretrainSettings, dims: int, corpus: Any) -> PretrainSettings:

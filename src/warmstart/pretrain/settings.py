@@ -93,7 +93,8 @@ class PretrainSettings:
     method : str
         ``simclr``, ``moco_v2``, ``byol`` (global contrastive), ``dense`` (dense contrastive with
         locations matched from the views' geometry), ``restore`` (restoration of corrupted
-        patches by a whole U-Net) or ``combined`` (a contrastive method plus restoration).
+        patches by a whole U-Net), ``combined`` (a contrastive method plus restoration) or
+        ``masked`` (masked image modelling of the U-Net: hidden blocks reconstructed).
     method_params : dict
     view1, view2 : ViewSettings
         Augmentation pipelines of the two views (``[pretrain.view1]`` tables); ``view2`` defaults
