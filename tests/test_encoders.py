@@ -163,3 +163,42 @@ def test_3d_unet_encoder_and_network():
     assert tuple(net(torch.zeros(1, 1, 16, 16, 16)).shape) == (1, 3, 16, 16, 16)
     with pytest.raises(ValueError, match="spatial_dims"):
         build_encoder("unet", spatial_dims=4)
+
+
+def _count(module: torch.nn.Module) -> int:
+    return sum(p.numel() for p in module.parameters())
+
+
+def test_3d_parameter_counts_by_hand():
+    # 3x3x3 kernels without bias (batch norm follows): weights cin * cout * 27, each norm 2 * cout.
+    unet = build_encoder("unet", in_channels=1, base_width=4, depth=3, spatial_dims=3)
+    by_hand = (1 * 4 * 27 + 8 + 4 * 4 * 27 + 8) + (4 * 8 * 27 + 16 + 8 * 8 * 27 + 16) + (8 * 16 * 27 + 32 + 16 * 16 * 27 + 32)
+    assert _count(unet) == by_hand == 13612
+    # residual: stem, one block per stage; a stride-2 block's skip is a 1x1x1 convolution and a norm
+    res = build_encoder("unet_residual", in_channels=1, base_width=4, depth=3, spatial_dims=3)
+    stem = 1 * 4 * 27 + 8
+    stage0 = 4 * 4 * 27 + 8 + 4 * 4 * 27 + 8
+    stage1 = 4 * 8 * 27 + 16 + 8 * 8 * 27 + 16 + 4 * 8 + 16
+    stage2 = 8 * 16 * 27 + 32 + 16 * 16 * 27 + 32 + 8 * 16 + 32
+    assert _count(res) == stem + stage0 + stage1 + stage2 == 14260
+    # a learned downsampling adds a 2x2x2 convolution of stride 2 (with bias) per level change
+    down = build_encoder("unet", in_channels=1, base_width=4, depth=3, spatial_dims=3, downsample="conv")
+    assert _count(down) - _count(unet) == (4 * 4 * 8 + 4) + (8 * 8 * 8 + 8)
+
+
+@pytest.mark.parametrize("name,params", [
+    ("unet", {"spatial_dims": 3}), ("unet", {"spatial_dims": 3, "act": "leaky_relu", "downsample": "conv"}),
+    ("unet_residual", {"spatial_dims": 3, "blocks": 2, "norm": "instance"}), ("unet_residual", {"norm": "group"}),
+])
+def test_stage_maps_have_the_strides_their_spec_states(name, params):
+    enc = build_encoder(name, in_channels=1, base_width=4, depth=3, **params)
+    dims = params.get("spatial_dims", 2)
+    feats = enc(torch.zeros(2, 1, *(16,) * dims))
+    for f, stage in zip(feats, enc.spec.stages):
+        assert f.shape[1] == stage.channels and tuple(f.shape[2:]) == (16 // stage.stride,) * dims
+    if params.get("act") == "leaky_relu":
+        assert any(isinstance(m, torch.nn.LeakyReLU) for m in enc.modules())
+        assert enc.spec.params["downsample"] == "conv" and "down.0.weight" in enc.state_dict()
+    from warmstart.encoders import encoder_from_spec
+
+    assert encoder_from_spec(enc.spec).state_dict().keys() == enc.state_dict().keys()

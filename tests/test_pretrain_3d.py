@@ -51,6 +51,13 @@ def test_every_3d_method_trains_a_3d_encoder(cubes, tmp_path, method, params):
     assert res.summary["encoder"]["params"]["spatial_dims"] == 3
 
 
+def test_the_residual_encoder_pretrains_in_3d_with_masked_modelling(cubes, tmp_path):
+    s = PretrainSettings(max_steps=2, method="masked", **{**FAST, "encoder": "unet_residual"})
+    res = pretrain(cubes, tmp_path / "run", s, progress=False)
+    ck = torch.load(res.path / "checkpoints" / "last.ckpt", weights_only=True)["state_dict"]
+    assert ck["method.encoder.stem.0.weight"].dim() == 5 and np.isfinite(res.final_loss)
+
+
 def test_a_resumed_3d_run_joins_the_uninterrupted_loss_curve(cubes, tmp_path):
     # the 3-D views draw from the step's generator: a resume sees the same views
     s = PretrainSettings(max_steps=6, method="dense", method_params={"max_points": 64}, **FAST)

@@ -29,7 +29,8 @@ def build_encoder(name: str, **params: Any) -> Any:
     Parameters
     ----------
     name : str
-        ``unet``, ``resnet18``, ``resnet34``, ``resnet50``, ``resnet_narrow`` (see ``ENCODERS``).
+        ``unet``, ``unet_residual``, ``resnet18``, ``resnet34``, ``resnet50``, ``resnet_narrow``
+        (see ``ENCODERS``).
     **params
         Constructor parameters (``in_channels``, widths, norm, ...).
 

@@ -14,7 +14,7 @@ from torch import nn
 from .registry import register
 from .spec import EncoderSpec, Stage
 
-__all__ = ["UNetEncoder", "DoubleConv", "make_norm", "conv_type", "check_spatial_dims"]
+__all__ = ["UNetEncoder", "DoubleConv", "make_norm", "make_act", "conv_type", "check_spatial_dims"]
 
 
 def check_spatial_dims(spatial_dims: int) -> int:
@@ -43,19 +43,28 @@ def make_norm(kind: str, channels: int, groups: int = 8, spatial_dims: int = 2) 
     raise ValueError(f"norm must be 'batch', 'group', 'instance' or 'none', got {kind!r}")
 
 
-class DoubleConv(nn.Sequential):
-    """(conv 3x3 -> norm -> ReLU) x 2 (3x3x3 kernels with ``spatial_dims=3``)."""
+def make_act(kind: str) -> nn.Module:
+    """``relu`` or ``leaky_relu`` (negative slope 0.01, the common default)."""
+    if kind == "relu":
+        return nn.ReLU(inplace=True)
+    if kind == "leaky_relu":
+        return nn.LeakyReLU(0.01, inplace=True)
+    raise ValueError(f"act must be 'relu' or 'leaky_relu', got {kind!r}")
 
-    def __init__(self, cin: int, cout: int, norm: str = "batch", spatial_dims: int = 2) -> None:
+
+class DoubleConv(nn.Sequential):
+    """(conv 3x3 -> norm -> activation) x 2 (3x3x3 kernels with ``spatial_dims=3``)."""
+
+    def __init__(self, cin: int, cout: int, norm: str = "batch", spatial_dims: int = 2, act: str = "relu") -> None:
         bias = norm == "none"
         conv = conv_type(spatial_dims)
         super().__init__()
         self.conv1 = conv(cin, cout, 3, padding=1, bias=bias)
         self.norm1 = make_norm(norm, cout, spatial_dims=spatial_dims)
-        self.act1 = nn.ReLU(inplace=True)
+        self.act1 = make_act(act)
         self.conv2 = conv(cout, cout, 3, padding=1, bias=bias)
         self.norm2 = make_norm(norm, cout, spatial_dims=spatial_dims)
-        self.act2 = nn.ReLU(inplace=True)
+        self.act2 = make_act(act)
 
 
 @register("unet")
@@ -74,6 +83,11 @@ class UNetEncoder(nn.Module):
     spatial_dims : {2, 3}
         2 for slices (B, C, H, W), 3 for volumes (B, C, D, H, W) with 3x3x3 convolutions and
         2x2x2 pooling. Recorded in the spec only when 3, so 2-D specs stay as they were.
+    act : {"relu", "leaky_relu"}
+    downsample : {"maxpool", "conv"}
+        Between levels: 2x2(x2) max pooling (the classic network), or a learned 2x2(x2)
+        convolution of stride 2 (keys ``down.<i>``). ``act`` and ``downsample`` are recorded in
+        the spec only when they differ from the classic choice.
 
     Examples
     --------
@@ -85,7 +99,7 @@ class UNetEncoder(nn.Module):
     first_conv = "levels.0.conv1"  # the module whose weight sees the input channels
 
     def __init__(self, in_channels: int = 1, base_width: int = 32, depth: int = 5, norm: str = "batch",
-                 spatial_dims: int = 2) -> None:
+                 spatial_dims: int = 2, act: str = "relu", downsample: str = "maxpool") -> None:
         super().__init__()
         if depth < 1 or base_width < 1 or in_channels < 1:
             raise ValueError(f"unet needs depth, base_width and in_channels >= 1, got {depth}, {base_width}, {in_channels}")
@@ -93,16 +107,26 @@ class UNetEncoder(nn.Module):
         widths = [base_width * 2**i for i in range(depth)]
         self.levels = nn.ModuleList()
         for i, w in enumerate(widths):
-            self.levels.append(DoubleConv(in_channels if i == 0 else widths[i - 1], w, norm, dims))
+            self.levels.append(DoubleConv(in_channels if i == 0 else widths[i - 1], w, norm, dims, act))
+        if downsample not in ("maxpool", "conv"):
+            raise ValueError(f"downsample must be 'maxpool' or 'conv', got {downsample!r}")
         self.pool = nn.MaxPool3d(2) if dims == 3 else nn.MaxPool2d(2)
-        params = {"in_channels": in_channels, "base_width": base_width, "depth": depth, "norm": norm}
+        if downsample == "conv":
+            self.down = nn.ModuleList([conv_type(dims)(w, w, 2, stride=2) for w in widths[:-1]])
+        params: dict = {"in_channels": in_channels, "base_width": base_width, "depth": depth, "norm": norm}
         if dims == 3:
             params["spatial_dims"] = 3
+        if act != "relu":
+            params["act"] = act
+        if downsample != "maxpool":
+            params["downsample"] = downsample
         self.spec = EncoderSpec("unet", params, tuple(Stage(w, 2**i) for i, w in enumerate(widths)))
 
     def forward(self, x: torch.Tensor) -> list[torch.Tensor]:
         feats = []
         for i, level in enumerate(self.levels):
-            x = level(x if i == 0 else self.pool(x))  # (B, base*2^i, [D/2^i,] H/2^i, W/2^i)
+            if i > 0:
+                x = self.down[i - 1](x) if hasattr(self, "down") else self.pool(x)
+            x = level(x)  # (B, base*2^i, [D/2^i,] H/2^i, W/2^i)
             feats.append(x)
         return feats
