@@ -155,3 +155,32 @@ def test_restoration_trains_a_3d_decoder(cubes, tmp_path):
     ck = torch.load(res.path / "checkpoints" / "last.ckpt", weights_only=True)["state_dict"]
     head = next(v for k, v in ck.items() if k.endswith("restore_head.weight"))
     assert head.dim() == 5 and all(np.isfinite(v) for v in _losses(res.path).values())
+
+
+def test_nan_stop_and_collapse_warning_in_3d(cubes, tmp_path):
+    import warnings
+
+    import test_pretrain_loop  # noqa: F401  (registers its test methods)
+
+    test_pretrain_loop._NanAfter3.calls = 0
+    with pytest.raises(PretrainError, match="loss is nan at step 3"):
+        pretrain(cubes, tmp_path / "nan", PretrainSettings(max_steps=8, method="test_nan_after_3", **FAST), progress=False)
+    assert (tmp_path / "nan" / "checkpoints" / "step-2.ckpt").exists()
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        pretrain(cubes, tmp_path / "col", PretrainSettings(epochs=1, method="test_collapsed", **FAST), progress=False)
+    assert any("representation collapse" in str(w.message) for w in caught)
+
+
+@pytest.mark.slow
+def test_ddp_two_cpu_processes_in_3d_end_with_identical_weights(cubes, tmp_path):
+    import subprocess
+    import sys
+
+    proc = subprocess.run([sys.executable, "-m", "warmstart", "-q", "pretrain", str(cubes), "-o", str(tmp_path / "ddp"),
+                           "--recipe", "smoke-3d", "--max-steps", "4", "--devices", "2", "--strategy", "ddp",
+                           "--accelerator", "cpu", "--json"], capture_output=True, text=True, timeout=600)
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    summary = json.loads((tmp_path / "ddp" / "summary.json").read_text())
+    assert len(summary["rank_checksums"]) == 2 and summary["rank_checksums"][0] == summary["rank_checksums"][1]
+    assert summary["steps"] == 4 and summary["encoder"]["params"]["spatial_dims"] == 3

@@ -11,10 +11,14 @@ filter scans in spirit: grains and pores with scanner noise), then, in one run:
    resident memory of the build's whole process tree (sampled every 20 ms);
 3. the same for one single 4 GB volume (memory target).
 
-Two recipes are measured: ``default`` (the shipped defaults: every 8th slice) and ``every-slice``
-(slice stride 1: the build must read all the data, the honest worst case).
+Three recipes are measured: ``default`` (the shipped defaults: every 8th slice), ``every-slice``
+(slice stride 1: the build must read all the data, the honest worst case) and ``cubes`` (3-D
+cubes of 48 voxels on a grid of 48: every voxel read; the 3-D memory target, RSS < 1.5 GB on the
+4 GB volume).
 
 Usage: python tools/bench_corpus.py [--dir DIR] [--gb 2.0] [--big-gb 4.0] [--workers 2] [--keep]
+                                    [--recipes default,every-slice,cubes]
+    (--gb 0 skips the archive: e.g. --gb 0 --recipes cubes measures the 3-D build alone)
 """
 from __future__ import annotations
 
@@ -173,6 +177,7 @@ def main() -> None:
     ap.add_argument("--big-gb", type=float, default=4.0, help="size of the single-volume memory test (0 skips)")
     ap.add_argument("--workers", type=int, default=2)
     ap.add_argument("--keep", action="store_true", help="keep the generated data")
+    ap.add_argument("--recipes", default="default,every-slice,cubes", help="which builds to time (comma list)")
     args = ap.parse_args()
     root = args.dir or Path(tempfile.mkdtemp(prefix="warmstart-bench-"))
     root.mkdir(parents=True, exist_ok=True)
@@ -181,7 +186,7 @@ def main() -> None:
     n_vol = 4
     slices = int(args.gb * 1e9 / per_slice / n_vol) + 1
     t0 = time.perf_counter()
-    if not archive.exists():
+    if args.gb > 0 and not archive.exists():
         archive.mkdir()
         for i, suffix in enumerate([".tif", ".mrc", ".npy", ".tif"]):
             make_volume(archive / f"filter_{i}{suffix}", slices, seed=i)
@@ -190,9 +195,12 @@ def main() -> None:
         make_volume(big / "filter_big.npy", int(args.big_gb * 1e9 / per_slice) + 1, seed=99)
     print(f"generated data in {time.perf_counter() - t0:.0f} s under {root}")
     recipes = {"default": [], "every-slice": ["--set", "sampling.slice_stride=1", "--set", "sampling.max_per_source=1000000",
-                                              "--set", "sampling.stride=256"]}
+                                              "--set", "sampling.stride=256"],
+               "cubes": ["--set", "sampling.spatial_dims=3", "--set", "sampling.patch_size=48", "--set", "sampling.stride=48",
+                         "--set", "sampling.assume_cubic_voxels=true", "--set", "sampling.max_per_source=1000000"]}
+    recipes = {k: v for k, v in recipes.items() if k in args.recipes.split(",")}
     rows = []
-    for label, data in [("archive", archive)] + ([("single volume", big)] if args.big_gb > 0 else []):
+    for label, data in ([("archive", archive)] if args.gb > 0 else []) + ([("single volume", big)] if args.big_gb > 0 else []):
         files = sorted(p for p in data.iterdir())
         size = sum(p.stat().st_size for p in files)
         print(f"[{label}] {size / 1e9:.2f} GB in {len(files)} files")

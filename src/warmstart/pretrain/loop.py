@@ -309,13 +309,10 @@ def pretrain(corpus: str | os.PathLike[str], out: str | os.PathLike[str], settin
     return PretrainResult(out, int(trainer.global_step), summary["final_loss"], summary)
 
 
-# Methods with a 3-D form (every registered one today; a new method states it here).
-_METHODS_3D = ("simclr", "moco_v2", "byol", "dense", "restore", "combined", "masked")
-
-
 def _for_spatial_dims(s: PretrainSettings, dims: int, corpus: Any) -> PretrainSettings:
     """The settings with the encoder built for the corpus's spatial dims (recorded in the run's
-    recipe.json), or a clear refusal of an encoder or method that has no 3-D form."""
+    recipe.json), or a clear refusal of an encoder that has no 3-D form (every built-in method
+    works in 3-D)."""
     import inspect
 
     from ..encoders.registry import ENCODERS
@@ -330,9 +327,6 @@ def _for_spatial_dims(s: PretrainSettings, dims: int, corpus: Any) -> PretrainSe
                             "use pretrain.encoder = \"unet\" for 3-D")
     if stated not in (None, 3):
         raise PretrainError(f"{corpus}: a corpus of 3-D cubes, but pretrain.encoder_params sets spatial_dims = {stated}")
-    if s.method not in _METHODS_3D:
-        raise PretrainError(f"{corpus}: method {s.method!r} has no 3-D form yet; for 3-D cubes use one of "
-                            f"{', '.join(_METHODS_3D)}")
     return dataclasses.replace(s, encoder_params={**s.encoder_params, "spatial_dims": 3})
 
 
