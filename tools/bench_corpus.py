@@ -197,7 +197,8 @@ def main() -> None:
     recipes = {"default": [], "every-slice": ["--set", "sampling.slice_stride=1", "--set", "sampling.max_per_source=1000000",
                                               "--set", "sampling.stride=256"],
                "cubes": ["--set", "sampling.spatial_dims=3", "--set", "sampling.patch_size=48", "--set", "sampling.stride=48",
-                         "--set", "sampling.assume_cubic_voxels=true", "--set", "sampling.max_per_source=1000000"]}
+                         "--set", "sampling.assume_cubic_voxels=true", "--set", "sampling.max_per_source=1000000",
+                         "--set", "store.chunk_patches=32"]}  # 7 MB chunks of cubes, as for 2-D patches
     recipes = {k: v for k, v in recipes.items() if k in args.recipes.split(",")}
     rows = []
     for label, data in ([("archive", archive)] if args.gb > 0 else []) + ([("single volume", big)] if args.big_gb > 0 else []):

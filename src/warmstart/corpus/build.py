@@ -203,9 +203,15 @@ def _sample_volume(vol: Any, ref: Any, plan: Any, factors: tuple[float, float, f
     inplane = np.array([(factors[1] + factors[2]) / 2, (factors[0] + factors[2]) / 2, (factors[0] + factors[1]) / 2])
     if cubes:
         inplane[0] = sum(factors) / 3
+    # One region read of b source bytes holds b / itemsize voxels, and working on it costs per voxel:
+    # the region and the one read ahead (2 x itemsize), the float32 patches, the kept copy and the
+    # codes (about 14 bytes). The region budget keeps that sum within memory_mb (cubes fill their
+    # regions; thin 2-D regions rarely do).
+    itemsize = vol.dtype.itemsize
+    budget = s.memory_mb * 2**20 * itemsize // (2 * itemsize + 14)
     with open(staging, "wb") as fh:
-        for patches, idx in extract_patches(vol.read, vol.shape, vol.dtype.itemsize, plan, (p, p, p) if cubes else (k, p, p),
-                                            ref.apply, filt, s.memory_mb * 2**20 // 4):
+        for patches, idx in extract_patches(vol.read, vol.shape, itemsize, plan, (p, p, p) if cubes else (k, p, p),
+                                            ref.apply, filt, budget):
             codes, err = encode(patches, enc)
             fh.write(codes.tobytes())
             stats.update(codes)
@@ -295,7 +301,10 @@ def build_corpus(
                   "staging": str(staging)} for j in range(n)]
     bar = progress_bar(total=len(chosen), initial=len(done), desc="corpus: sources", unit="src", disable=not progress, leave=False)
     code_dtype = np.dtype(np.float16 if s.store.dtype == "float16" else np.uint16)
-    assembler = _SourceAssembler(writer, code_dtype, shape, 8 * s.store.chunk_patches)
+    # Staged patches are copied into the store in pieces of at most 8 chunks and 32 MB (a cube of
+    # 48 voxels is 27x a 64 px patch: a count alone would not bound the memory).
+    per_read = max(1, min(8 * s.store.chunk_patches, (32 << 20) // (int(np.prod(shape)) * code_dtype.itemsize)))
+    assembler = _SourceAssembler(writer, code_dtype, shape, per_read)
     n_patches = sum(r["stop"] - r["start"] for r in done)
 
     def commit(rec: dict[str, Any]) -> None:

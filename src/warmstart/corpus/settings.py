@@ -224,7 +224,8 @@ class StoreSettings:
 class CorpusSettings:
     """Everything that decides which patches a build writes (the ``[corpus]`` recipe section).
 
-    ``workers`` and ``memory_mb`` change speed and memory, never the patches. ``part_mb`` splits
+    ``workers`` and ``memory_mb`` change speed and memory, never the patches (``memory_mb``: the
+    working memory of one worker's region reads and patch arrays, in MB). ``part_mb`` splits
     sources larger than that many megabytes on disk into slabs along Z that workers process in
     parallel; it is part of the build's identity because the duplicate rule starts afresh in
     each part (and each part fits the same intensity reference from the same sample itself).
