@@ -7,6 +7,10 @@ from pathlib import Path
 import numpy as np
 import pytest
 
+# A helper module that registers pretraining methods: pytest's doctest collection would import it a
+# second time under another module name, and the registry refuses a name registered twice.
+collect_ignore = ["faulty_methods.py"]
+
 
 def textured(shape=(12, 48, 56), dtype=np.uint16, seed=0, lo=1000, hi=30000):
     """A smooth two-phase texture with noise, scaled to [lo, hi] in ``dtype`` (unit fixture data)."""

@@ -160,9 +160,9 @@ def test_restoration_trains_a_3d_decoder(cubes, tmp_path):
 def test_nan_stop_and_collapse_warning_in_3d(cubes, tmp_path):
     import warnings
 
-    import test_pretrain_loop  # noqa: F401  (registers its test methods)
+    from faulty_methods import NanAfter3  # registers the broken test methods
 
-    test_pretrain_loop._NanAfter3.calls = 0
+    NanAfter3.calls = 0
     with pytest.raises(PretrainError, match="loss is nan at step 3"):
         pretrain(cubes, tmp_path / "nan", PretrainSettings(max_steps=8, method="test_nan_after_3", **FAST), progress=False)
     assert (tmp_path / "nan" / "checkpoints" / "step-2.ckpt").exists()
@@ -184,3 +184,13 @@ def test_ddp_two_cpu_processes_in_3d_end_with_identical_weights(cubes, tmp_path)
     summary = json.loads((tmp_path / "ddp" / "summary.json").read_text())
     assert len(summary["rank_checksums"]) == 2 and summary["rank_checksums"][0] == summary["rank_checksums"][1]
     assert summary["steps"] == 4 and summary["encoder"]["params"]["spatial_dims"] == 3
+
+
+def test_the_same_seed_gives_the_same_3d_losses(cubes, tmp_path):
+    s = PretrainSettings(max_steps=3, method="masked", **FAST)
+    a = pretrain(cubes, tmp_path / "a", s, progress=False)
+    b = pretrain(cubes, tmp_path / "b", s, progress=False)
+    assert _losses(a.path) == _losses(b.path)
+    c = pretrain(cubes, tmp_path / "c", PretrainSettings(max_steps=3, method="masked", **{**FAST, "seed": 1}),
+                 progress=False)
+    assert _losses(c.path) != _losses(a.path)

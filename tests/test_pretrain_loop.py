@@ -18,30 +18,9 @@ torch = pytest.importorskip("torch")
 
 from warmstart.errors import PretrainError  # noqa: E402
 from warmstart.pretrain.loop import pretrain  # noqa: E402
-from warmstart.pretrain.methods import register_method  # noqa: E402
-from warmstart.pretrain.methods.simclr import SimCLR  # noqa: E402
 from warmstart.pretrain.settings import PretrainSettings  # noqa: E402
 
-
-@register_method("test_nan_after_3")
-class _NanAfter3(SimCLR):
-    calls = 0
-
-    def loss(self, v1, v2, views=None):
-        loss, out = super().loss(v1, v2, views)
-        type(self).calls += 1
-        return (loss * float("nan") if type(self).calls > 3 else loss), out
-
-
-@register_method("test_collapsed")
-class _Collapsed(SimCLR):
-    """A deliberately collapsed encoder: every weight zero and frozen, so every patch embeds alike."""
-
-    def __init__(self, encoder, **kw):
-        super().__init__(encoder, **kw)
-        for p in self.encoder.parameters():
-            torch.nn.init.zeros_(p)
-            p.requires_grad_(False)
+from faulty_methods import NanAfter3  # noqa: E402  (registers the broken test methods)
 
 
 @pytest.fixture(scope="module")
@@ -129,7 +108,7 @@ def test_resume_joins_the_uninterrupted_loss_curve(corpus, tmp_path, method, par
 
 
 def test_nonfinite_loss_stops_and_keeps_the_last_good_checkpoint(corpus, tmp_path):
-    _NanAfter3.calls = 0
+    NanAfter3.calls = 0
     s = PretrainSettings(max_steps=20, method="test_nan_after_3", **{**FAST, "checkpoint_every": 2})
     with pytest.raises(PretrainError, match="loss is nan at step 3"):
         pretrain(corpus, tmp_path / "run", s, progress=False)
