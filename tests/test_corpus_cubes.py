@@ -146,3 +146,48 @@ def test_a_2d_manifest_says_2_spatial_dims(tmp_path):
 
     assert open_corpus(tiny_corpus(tmp_path, n=1)).spatial_dims == 2
 
+
+
+def test_an_interrupted_cube_build_resumes_to_the_uninterrupted_store(tmp_path):
+    # As for 2-D patches: the build died after appending later sources' cubes but before their
+    # journal records; the rerun cuts them back out and ends with the store a single build makes.
+    for i in range(3):
+        (tmp_path / "a").mkdir(exist_ok=True)
+        np.save(tmp_path / "a" / f"v{i}.npy", textured(shape=(16, 32, 32), seed=i))
+    s = _cube_settings((1.0, 1.0, 1.0), stride=6)
+    ref = open_corpus(build_corpus(tmp_path / "a", tmp_path / "ref.zarr", s, report=False, progress=False).path)
+    out = tmp_path / "c.zarr"
+    build_corpus(tmp_path / "a", out, s, report=False, progress=False)
+    for j in sorted((out / "journal").glob("*.json"))[1:]:
+        j.unlink()
+    (out / "manifest.json").unlink()
+    res = build_corpus(tmp_path / "a", out, s, report=False, progress=False)
+    assert res.resumed == 1
+    again = open_corpus(out)
+    np.testing.assert_array_equal(again.patches[:], ref.patches[:])
+    for col in ("source", "z", "y", "x", "axis"):
+        np.testing.assert_array_equal(again.index()[col], ref.index()[col])
+    assert again.manifest["counts"] == ref.manifest["counts"]
+
+
+def test_cube_filters_and_quota_are_counted_per_rule_and_source(tmp_path):
+    # A volume whose lower half is one constant value: every cube that lies wholly in it has no
+    # variance and is dropped by that rule. The quota caps the planned positions (a seeded subsample
+    # of 5), and the filters then act on those 5.
+    vol = textured(shape=(16, 32, 32), seed=4).astype(np.float32)
+    vol[8:] = vol.mean()
+    (tmp_path / "a").mkdir()
+    np.save(tmp_path / "a" / "v.npy", vol)
+    settings = CorpusSettings(read=ReadSettings(voxel_size_um=(1.0, 1.0, 1.0)),
+                              sampling=SamplingSettings(spatial_dims=3, patch_size=8, max_per_source=100_000),
+                              filters=FilterSettings(min_std=0.02, max_background_fraction=1.0, duplicate_threshold=0.0))
+    counts = open_corpus(build_corpus(tmp_path / "a", tmp_path / "c.zarr", settings, report=False,
+                                      progress=False).path).manifest["sources"][0]["counts"]
+    # 2 x 4 x 4 cube positions; the 16 of the constant half (z = 8) have no variance
+    assert counts["planned"] == 32 and counts["low_variance"] == 16 and counts["kept"] == 16
+    capped = CorpusSettings(read=settings.read, filters=settings.filters,
+                            sampling=SamplingSettings(spatial_dims=3, patch_size=8, max_per_source=5))
+    store = open_corpus(build_corpus(tmp_path / "a", tmp_path / "q.zarr", capped, report=False, progress=False).path)
+    c = store.manifest["sources"][0]["counts"]
+    assert c["planned"] == 5 and c["kept"] + c["low_variance"] == 5
+    assert len(store.read()) == c["kept"] and set(store.index()["z"]) == {0}
