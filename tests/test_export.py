@@ -85,7 +85,8 @@ def test_manifest_records_the_input_contract(corpus, r18):
     assert m["standardization"]["mean"] == pytest.approx(cm["statistics"]["mean"])
     assert m["standardization"]["std"] == pytest.approx(cm["statistics"]["std"])
     assert m["intensity"]["fit"] == "per_volume" and m["intensity"]["rule"]["scheme"] == "percentile"
-    assert m["input"] == {"channels": 1, "patch_size": 32, "axes": "Z"}  # the channel count once
+    assert m["input"] == {"channels": 1, "patch_size": 32, "axes": "Z", "spatial_dims": 2, "axis_order": "YX",
+                          "patch_shape": [32, 32], "voxel_size_um": [None, None, None]}  # the channel count once
     # One convention for both manifests: format + format_version, and the same voxel fields.
     assert (m["format"], m["format_version"], cm["format"], cm["format_version"]) == (
         "warmstart-encoder", 2, "warmstart-corpus", 2)

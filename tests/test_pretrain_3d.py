@@ -15,7 +15,7 @@ torch = pytest.importorskip("torch")
 from conftest import textured  # noqa: E402
 from warmstart.corpus.build import build_corpus  # noqa: E402
 from warmstart.corpus.settings import CorpusSettings, SamplingSettings  # noqa: E402
-from warmstart.errors import ExportError, PretrainError  # noqa: E402
+from warmstart.errors import PretrainError  # noqa: E402
 from warmstart.pretrain.loop import pretrain  # noqa: E402
 from warmstart.pretrain.settings import PretrainSettings  # noqa: E402
 
@@ -81,15 +81,6 @@ def test_what_has_no_3d_form_is_refused_by_name(cubes, tmp_path):
     flat = tiny_corpus(tmp_path / "flat", n=1)
     with pytest.raises(PretrainError, match="2-D patches, but .* spatial_dims = 3"):
         pretrain(flat, tmp_path / "r3", PretrainSettings(**{**FAST, "encoder_params": {"spatial_dims": 3}}), progress=False)
-
-
-def test_a_3d_run_is_not_exported_as_a_2d_encoder(cubes, tmp_path):
-    from warmstart.export.pack import export_encoder
-
-    res = pretrain(cubes, tmp_path / "run", PretrainSettings(max_steps=1, **FAST), progress=False)
-    with pytest.raises(ExportError, match="a 3-D run"):
-        export_encoder(res.path, tmp_path / "e.safetensors")
-    assert not (tmp_path / "e.safetensors").exists()
 
 
 def test_smoke_3d_recipe_runs_end_to_end_from_the_command_line(tmp_path, capsys):

@@ -52,6 +52,10 @@ def test_readme_warmstart_commands_run(tmp_path):
     assert json.loads((tmp_path / "merged.zarr" / "manifest.json").read_text())["counts"]["sources_ok"] == 5
     bench = json.loads((tmp_path / "bench" / "bench.json").read_text())
     assert len(bench["runs"]) == 2 * 2 * 2 and (tmp_path / "bench" / "bench.html").exists()
+    from warmstart.export.file import read_manifest
+
+    cubes = read_manifest(tmp_path / "cubes-encoder.safetensors")  # the 3-D section's export
+    assert cubes["input"]["spatial_dims"] == 3 and cubes["encoder"]["spec"]["params"]["spatial_dims"] == 3
 
 
 TINY_DEMO = ("corpus.sampling.patch_size=32", "corpus.sampling.stride=16", "corpus.workers=1",

@@ -48,6 +48,16 @@ def intensity_line(m: Mapping[str, Any]) -> str:
     return f"{what} ({how})"
 
 
+def _input_words(m: Mapping[str, Any]) -> str:
+    """``1 channel(s), 3-D patches of 32x32x32 voxels (ZYX)`` or ``..., 2-D patches of 64 px``."""
+    inp = m["input"]
+    dims = int(inp.get("spatial_dims", 2))
+    if dims == 3:
+        shape = "x".join(str(n) for n in inp.get("patch_shape", [inp["patch_size"]] * 3))
+        return f"{inp['channels']} channel(s), 3-D patches of {shape} voxels ({inp.get('axis_order', 'ZYX')})"
+    return f"{inp['channels']} channel(s), 2-D patches of {inp['patch_size']} px"
+
+
 def summary_text(m: Mapping[str, Any]) -> str:
     """A few lines on what an encoder file holds (``warmstart inspect``)."""
     e, c, t, v = m["encoder"], m["corpus"], m["training"], m["voxel_size_um"]
@@ -63,8 +73,7 @@ def summary_text(m: Mapping[str, Any]) -> str:
         (f"decoder     U-Net decoder ({d['norm']} norm, {d['out_channels']} output channels), {d['parameters']:,} "
          "parameters: loads into warmstart.UNet and smp.Unet with the same widths and bilinear upsampling"
          if d else "decoder     none (encoder only)"),
-        f"input       {m['input']['channels']} channel(s), patches of {m['input']['patch_size']} px, "
-        f"voxel size {_um_range(rng)}",
+        f"input       {_input_words(m)}, voxel size {_um_range(rng)}",
         f"intensity   {intensity_line(m)}",
         f"standardize (x - {st['mean']:.5g}) / {st['std']:.5g}",
         f"corpus      {c['sources']} sources, {c['patches']:,} patches; formats: {_formats(c)}; "
@@ -79,6 +88,13 @@ def summary_text(m: Mapping[str, Any]) -> str:
     if c.get("clinical"):
         lines.append(f"caution     clinical data: {CLINICAL_CAUTION}")
     return "\n".join(lines)
+
+
+def _context_words(m: Mapping[str, Any]) -> str:
+    if int(m["input"].get("spatial_dims", 2)) == 3:
+        return ("3-D encoder: it takes volumes (B, C, D, H, W) in Z, Y, X order with cubic voxels near the "
+                "corpus cubes' size; a 2-D network cannot use it.")
+    return f"2-D encoder: 3-D context enters only through {m['input']['channels']} adjacent slice(s)."
 
 
 def model_card(m: Mapping[str, Any], title: str = "Encoder") -> str:
@@ -111,7 +127,7 @@ unlabeled images, meant as the warm start of a segmentation network (U-Net encod
 ## What it was trained on
 
 - {c['sources']} volumes; file formats: {_formats(c, ': ')}; modalities: {_modalities(c)}
-- {c['patches']:,} patches of {m['input']['patch_size']} px, {m['input']['channels']} channel(s), cut along {m['input']['axes']}
+- {c['patches']:,} {_input_words(m)}{'' if int(m['input'].get('spatial_dims', 2)) == 3 else ', cut along ' + str(m['input']['axes'])}
 - Source voxel sizes {_um_range(src)}; patch voxel sizes {_um_range(rng)}
 - Training: {t['method']}, {t['steps']} steps (batch {t['batch_size']}, lr {t['lr']}), final loss {_fmt(t['final_loss'])},
   embedding spread {_fmt(t['final_spread'], 3)}, kNN accuracy {_fmt(t['knn_accuracy'], 3)}, {_fmt(t['seconds'])} s;
@@ -136,7 +152,7 @@ labelled data (`warmstart bench`) before relying on it.{decoder_use}
 - Features were learned on {', '.join(c['modalities']) or 'the corpus'} data only; other modalities, materials or voxel
   sizes may transfer poorly.
 - A self-supervised loss says little about segmentation quality; only a labelled benchmark does.
-- 2-D encoder: 3-D context enters only through {m['input']['channels']} adjacent slice(s).{caution}
+- {_context_words(m)}{caution}
 
 ## Provenance
 

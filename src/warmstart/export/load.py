@@ -11,6 +11,7 @@ import numpy as np
 from ..errors import ExportError, WeightsMismatchError
 from .file import read_encoder_file
 from .layouts import LAYOUTS, Layout, family
+from .manifest import spatial_dims
 
 __all__ = ["load_encoder", "warm_start", "WarmStartReport", "adapt_input_channels", "split_parts"]
 
@@ -72,7 +73,8 @@ def load_encoder(file: str | os.PathLike[str], device: str = "cpu") -> Any:
 
 
 def adapt_input_channels(weight: Any, channels: int) -> Any:
-    """Adapt a first-convolution weight (O, I, kH, kW) to ``channels`` input channels.
+    """Adapt a first-convolution weight (O, I, kH, kW), or (O, I, kD, kH, kW) in 3-D, to
+    ``channels`` input channels.
 
     The rule the common libraries use (timm's ``adapt_input_conv``, segmentation_models_pytorch's
     ``patch_first_conv``): to one channel, sum the kernels over the input channels (a grayscale
@@ -88,7 +90,8 @@ def adapt_input_channels(weight: Any, channels: int) -> Any:
     if channels == 1:
         w = w.sum(dim=1, keepdim=True)
     else:
-        w = w.repeat(1, math.ceil(channels / i), 1, 1)[:, :channels] * (i / channels)
+        reps = (1, math.ceil(channels / i)) + (1,) * (w.dim() - 2)
+        w = w.repeat(*reps)[:, :channels] * (i / channels)
     return w.to(dtype)
 
 
@@ -184,7 +187,7 @@ def _plan(layout: Layout, ours: dict[str, Any], theirs: dict[str, Any], first_co
         t = theirs[tk]
         src = torch.as_tensor(v)
         if tuple(src.shape) != tuple(t.shape):
-            if k == first and src.ndim == 4 and src.shape[0] == t.shape[0] and src.shape[2:] == t.shape[2:]:
+            if k == first and src.ndim in (4, 5) and src.shape[0] == t.shape[0] and src.shape[2:] == t.shape[2:]:
                 src = adapt_input_channels(src, int(t.shape[1]))
                 rep.adapted.append(f"{tk} {int(v.shape[1])} -> {int(t.shape[1])} channels")
             else:
@@ -199,7 +202,7 @@ def _plan(layout: Layout, ours: dict[str, Any], theirs: dict[str, Any], first_co
         if k in loaded:
             continue
         if k.endswith(".bias") and k[:-5] + ".weight" in loaded and theirs[k].ndim == 1 \
-                and theirs[k[:-5] + ".weight"].ndim == 4:
+                and theirs[k[:-5] + ".weight"].ndim in (4, 5):
             copy[k] = torch.zeros_like(theirs[k])
             rep.zero_filled.append(k)
         elif k not in misshapen:
@@ -230,6 +233,22 @@ def _plan_decoder(layout: Layout, dec: dict[str, Any], theirs: dict[str, Any], m
         return {}, "not loaded, the network's decoder differs from the file's: " + "; ".join(problems[:3]) + more
     copy = {mapping[k]: torch.as_tensor(v).to(theirs[mapping[k]].dtype) for k, v in dec.items()}
     return copy, f"loaded ({len(copy)} tensors, layout {layout.name})"
+
+
+def _check_dims(layout: Layout, ours: dict[str, Any], theirs: dict[str, Any], first_conv: str, dims: int,
+                model: Any, file: str) -> None:
+    """Refuse a 2-D file for a 3-D network and the other way round, naming both (nothing fits then)."""
+    tk = layout.map_key(first_conv + ".weight")
+    if tk is None or tk not in theirs or theirs[tk].ndim not in (4, 5):
+        return
+    net_dims = theirs[tk].ndim - 2
+    if net_dims != dims:
+        kernel = "x".join(str(n) for n in tuple(ours[first_conv + ".weight"].shape[2:]))
+        raise WeightsMismatchError(
+            f"{file}: the file holds a {dims}-D encoder ({kernel} kernels, trained on "
+            f"{'cubes' if dims == 3 else 'slices'}) and {type(model).__name__} is a {net_dims}-D network "
+            f"(its {tk} is {tuple(theirs[tk].shape)}); build the network with spatial_dims={dims}, "
+            f"or pretrain a {net_dims}-D encoder (sampling.spatial_dims = {net_dims})")
 
 
 def _library(model: Any) -> str:
@@ -303,7 +322,9 @@ def warm_start(model: Any, file: str | os.PathLike[str], layout: str = "auto", s
     ours, dec = split_parts(arrays)
     fam = family(manifest["encoder"]["spec"]["name"])
     theirs = model.state_dict()
-    rep, copy = _choose(model, ours, theirs, fam, manifest["encoder"]["first_conv"], str(file), layout)
+    first_conv = manifest["encoder"]["first_conv"]
+    rep, copy = _choose(model, ours, theirs, fam, first_conv, str(file), layout)
+    _check_dims(LAYOUTS[rep.layout], ours, theirs, first_conv, spatial_dims(manifest), model, str(file))
     if dec and decoder is False:
         rep.decoder_note = "not loaded (decoder=False)"
     elif dec:

@@ -9,7 +9,12 @@ same ``format`` / ``format_version`` convention as the corpus manifest)
     EncoderSpec dict, ``first_conv`` (the module whose weight sees the input channels) and
     ``weights`` (``online`` or ``momentum``: which copy of the network the file holds).
 ``input``
-    ``channels`` (1, or k adjacent slices for 2.5-D), ``patch_size`` in pixels, ``axes`` sliced.
+    ``channels`` (1, or k adjacent slices for 2.5-D), ``patch_size`` in pixels, ``axes`` sliced,
+    ``spatial_dims`` (2: slices (B, C, H, W); 3: volumes (B, C, D, H, W)), ``axis_order`` of the
+    patch axes (``YX`` or ``ZYX``), ``patch_shape`` (pixels or voxels per patch axis, in that
+    order) and ``voxel_size_um``: the patches' voxel size per axis Z, Y, X, each [min, max] in µm
+    or null (for 2-D patches Z is the spacing of the slices they were cut from). Files written
+    before these fields existed are 2-D and are read as such (``voxel_size_um`` then null).
 ``intensity``
     ``rule`` (IntensitySettings dict); ``fit`` = ``per_volume`` (fit the rule on each new volume,
     as every corpus source was) or ``fixed`` (one reference for all data: a physical scale or
@@ -50,7 +55,7 @@ from .. import __version__
 from ..errors import ExportError
 
 __all__ = ["FORMAT", "MANIFEST_VERSION", "build_manifest", "check_manifest", "intensity_section",
-           "histogram_percentiles", "timm_config"]
+           "histogram_percentiles", "patch_voxel_ranges", "timm_config", "spatial_dims"]
 
 FORMAT = "warmstart-encoder"
 MANIFEST_VERSION = 2
@@ -110,6 +115,25 @@ def _corpus_section(corpus: Mapping[str, Any], path: str | None) -> dict[str, An
     }
 
 
+def patch_voxel_ranges(corpus: Mapping[str, Any]) -> list[list[float] | None]:
+    """The corpus patches' voxel size per axis (Z, Y, X) in micrometres, each ``[min, max]`` over
+    the sources that know it, or ``None`` (source voxel size times its downscale factor).
+
+    Examples
+    --------
+    >>> patch_voxel_ranges({"sources": [
+    ...     {"status": "ok", "voxel_size_um": [2.0, 1.0, 1.0], "downscale_factors": [1.0, 2.0, 2.0]},
+    ...     {"status": "ok", "voxel_size_um": [None, None, None], "downscale_factors": [1.0, 1.0, 1.0]}]})
+    [[2.0, 2.0], [2.0, 2.0], [2.0, 2.0]]
+    """
+    out: list[list[float] | None] = []
+    for axis in range(3):
+        vals = [float(s["voxel_size_um"][axis]) * float(s["downscale_factors"][axis]) for s in corpus["sources"]
+                if s.get("status") == "ok" and s.get("voxel_size_um") and s["voxel_size_um"][axis] is not None]
+        out.append([min(vals), max(vals)] if vals else None)
+    return out
+
+
 def timm_config(arch: str, channels: int, patch: int, mean: float, std: float, first_conv: str) -> dict[str, Any] | None:
     """A timm-style pretrained configuration, for the architectures timm names like ours.
 
@@ -149,7 +173,9 @@ def build_manifest(*, spec: Mapping[str, Any], first_conv: str, weights: str, co
         file holds: ``["encoder"]`` or ``["encoder", "decoder"]`` (files without ``parts`` hold the
         encoder only).
     """
-    channels, patch = int(corpus["patches"]["shape"][0]), int(corpus["patches"]["shape"][-1])
+    shape = [int(n) for n in corpus["patches"]["shape"]]  # (C, H, W) or (C, D, H, W)
+    channels, patch = shape[0], shape[-1]
+    dims = int(corpus["patches"].get("spatial_dims", len(shape) - 1))
     mean, std = (float(v) for v in standardization)
     hist = corpus["statistics"]["histogram"]
     return {
@@ -158,7 +184,9 @@ def build_manifest(*, spec: Mapping[str, Any], first_conv: str, weights: str, co
         "created": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
         "warmstart_version": __version__,
         "encoder": {"spec": dict(spec), "first_conv": first_conv, "weights": weights},
-        "input": {"channels": channels, "patch_size": patch, "axes": corpus["settings"]["sampling"]["axes"]},
+        "input": {"channels": channels, "patch_size": patch, "axes": corpus["settings"]["sampling"]["axes"],
+                  "spatial_dims": dims, "axis_order": "ZYX" if dims == 3 else "YX", "patch_shape": shape[1:],
+                  "voxel_size_um": patch_voxel_ranges(corpus)},
         "intensity": intensity_section(corpus),
         "standardization": {"mean": mean, "std": std},
         "corpus_values": {"percentiles": histogram_percentiles(hist), "mean": corpus["statistics"]["mean"],
@@ -166,7 +194,7 @@ def build_manifest(*, spec: Mapping[str, Any], first_conv: str, weights: str, co
         "voxel_size_um": dict(corpus["voxel_size_um"]),
         "corpus": _corpus_section(corpus, corpus_path),
         "training": dict(training),
-        "timm": timm_config(spec["name"], channels, patch, mean, std, first_conv),
+        "timm": timm_config(spec["name"], channels, patch, mean, std, first_conv) if dims == 2 else None,
         "parts": ["encoder", "decoder"] if decoder else ["encoder"],
         "decoder": dict(decoder) if decoder else None,
     }
@@ -184,7 +212,23 @@ def check_manifest(d: Any, path: str | os.PathLike[str]) -> dict[str, Any]:
     missing = [k for k in _REQUIRED if k not in d]
     if missing:
         raise ExportError(f"{path}: the encoder manifest lacks {', '.join(missing)}")
-    return _upgraded(d)
+    return _with_dims(_upgraded(d))
+
+
+def spatial_dims(manifest: Mapping[str, Any]) -> int:
+    """2 or 3: whether an encoder file's network works on slices or on volumes."""
+    return int(manifest["input"].get("spatial_dims", 2))
+
+
+def _with_dims(d: dict[str, Any]) -> dict[str, Any]:
+    """Fill the input's ``spatial_dims``, ``axis_order``, ``patch_shape`` and ``voxel_size_um`` in a manifest written
+    before they existed (every such file is 2-D); the file itself is not changed."""
+    inp = d["input"]
+    if "spatial_dims" in inp:
+        return d
+    patch = int(inp["patch_size"])
+    return {**d, "input": {**inp, "spatial_dims": 2, "axis_order": "YX", "patch_shape": [patch, patch],
+                           "voxel_size_um": None}}
 
 
 def _upgraded(d: dict[str, Any]) -> dict[str, Any]:

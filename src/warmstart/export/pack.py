@@ -99,7 +99,8 @@ def _trained_networks(run: Path, state: dict[str, Any], hp: dict[str, Any], ckpt
     online = filled(encoder(), nets["encoder"]["online"], "encoder")
     momentum = filled(encoder(), nets["encoder"]["momentum"], "momentum encoder") if nets["encoder"]["momentum"] else None
     dec = nets["decoder"]
-    decoder = filled(UNetDecoder(online.spec.stages, dec["norm"]), dec["key_prefix"], "decoder") if dec else None
+    dims = int(online.spec.params.get("spatial_dims", 2))
+    decoder = filled(UNetDecoder(online.spec.stages, dec["norm"], dims), dec["key_prefix"], "decoder") if dec else None
     return online, momentum, decoder
 
 
@@ -153,10 +154,6 @@ def export_encoder(run: str | os.PathLike[str], out: str | os.PathLike[str], *, 
     if not ckpt_path.is_file():
         raise ExportError(f"{ckpt_path}: no checkpoint to export (has the run in {run} started?)")
     corpus, corpus_path = _corpus_manifest(run)
-    if int((corpus.get("patches") or {}).get("spatial_dims", 2)) == 3:
-        # The encoder file's manifest describes 2-D inputs; the 3-D fields come with 3-D export.
-        raise ExportError(f"{run}: a 3-D run (pretrained on cubes); this warmstart exports 2-D encoders only, "
-                          "and the checkpoint stays usable in checkpoints/")
     try:
         ckpt = torch.load(ckpt_path, map_location="cpu", weights_only=True)
     except Exception as e:

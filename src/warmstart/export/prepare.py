@@ -43,8 +43,9 @@ def check_like_corpus(normalized: np.ndarray, file: str | os.PathLike[str] | Map
     """Ways in which normalized data does not look like the encoder's corpus (empty: none found).
 
     Compares the 1st, 50th and 99th percentiles with the corpus's (tolerance
-    :data:`PERCENTILE_TOLERANCE` of the corpus's 1-99 % range), and the in-plane voxel size
-    (micrometres) with the corpus patches' range (tolerance factor :data:`VOXEL_TOLERANCE`).
+    :data:`PERCENTILE_TOLERANCE` of the corpus's 1-99 % range), and the voxel size (micrometres)
+    with the corpus patches' range (tolerance factor :data:`VOXEL_TOLERANCE`): in-plane for a
+    2-D encoder, each of Z, Y and X for a 3-D one.
     """
     m = _manifest(file)
     out: list[str] = []
@@ -60,8 +61,29 @@ def check_like_corpus(normalized: np.ndarray, file: str | os.PathLike[str] | Map
                        f"{ref['1']:.3g}/{ref['50']:.3g}/{ref['99']:.3g} (percentile(s) {', '.join(off)} off by more than "
                        f"{PERCENTILE_TOLERANCE:.0%} of the corpus's 1-99 % range): other material, modality or "
                        "scanner setting than the corpus?")
+    out += _voxel_mismatch(m, voxel_size_um, name)
+    return out
+
+
+def _voxel_mismatch(m: Mapping[str, Any], voxel_size_um: Sequence[float | None] | float | None, name: str) -> list[str]:
+    """The voxel-size warnings: per axis (Z, Y, X) for a 3-D encoder, in-plane for a 2-D one."""
+    if voxel_size_um is None:
+        return []
+    out: list[str] = []
+    per_axis = m["input"].get("voxel_size_um")
+    if int(m["input"].get("spatial_dims", 2)) == 3 and per_axis and not np.isscalar(voxel_size_um):
+        sizes = list(voxel_size_um)[-3:]
+        for axis, v, r in zip("ZYX"[3 - len(sizes):], sizes, per_axis[3 - len(sizes):]):
+            if v is None or not r:
+                continue
+            lo, hi = r
+            if float(v) < lo / VOXEL_TOLERANCE or float(v) > hi * VOXEL_TOLERANCE:
+                out.append(f"{name}: voxel size along {axis} is {float(v):.4g} µm, the corpus cubes' {lo:.4g}-{hi:.4g} µm "
+                           f"(more than a factor {VOXEL_TOLERANCE:g} apart): resample it to cubic voxels of about "
+                           f"{(lo * hi) ** 0.5:.4g} µm (features are scale-dependent)")
+        return out
     rng = m["voxel_size_um"].get("patch_range")
-    if voxel_size_um is not None and rng:
+    if rng:
         sizes = [voxel_size_um] if np.isscalar(voxel_size_um) else list(voxel_size_um)[-2:]
         known = [float(v) for v in sizes if v is not None]
         if known:
@@ -85,8 +107,8 @@ def prepare(data: Any, file: str | os.PathLike[str] | Mapping[str, Any], *,
     file : path or dict
         The encoder file (or its manifest).
     voxel_size_um : float or sequence, optional
-        Voxel size in micrometres (in-plane; the last two entries of a sequence). Default: the
-        Volume's own.
+        Voxel size in micrometres, (Z, Y, X) or in-plane (a 2-D encoder uses the last two
+        entries; a 3-D encoder checks each axis). Default: the Volume's own.
     warn : bool
         Issue a :class:`~warmstart.errors.DataMismatchWarning` for each way the result does not
         look like the corpus (see :func:`check_like_corpus`).
