@@ -179,6 +179,10 @@ def _plan(layout: Layout, ours: dict[str, Any], theirs: dict[str, Any], first_co
     rep = WarmStartReport(str(file), layout.name)
     copy: dict[str, Any] = {}
     first = first_conv + ".weight"
+    # Networks that register their first convolution twice (nnU-Net's conv and all_modules.0) hold
+    # two keys for it: both are adapted alike.
+    firsts = {k for k, v in ours.items() if k == first or (first in ours and np.shape(v) == np.shape(ours[first])
+                                                            and np.array_equal(v, ours[first]))}
     for k, v in ours.items():
         tk = layout.map_key(k)
         if tk is None or tk not in theirs:
@@ -187,7 +191,7 @@ def _plan(layout: Layout, ours: dict[str, Any], theirs: dict[str, Any], first_co
         t = theirs[tk]
         src = torch.as_tensor(v)
         if tuple(src.shape) != tuple(t.shape):
-            if k == first and src.ndim in (4, 5) and src.shape[0] == t.shape[0] and src.shape[2:] == t.shape[2:]:
+            if k in firsts and src.ndim in (4, 5) and src.shape[0] == t.shape[0] and src.shape[2:] == t.shape[2:]:
                 src = adapt_input_channels(src, int(t.shape[1]))
                 rep.adapted.append(f"{tk} {int(v.shape[1])} -> {int(t.shape[1])} channels")
             else:
@@ -195,6 +199,9 @@ def _plan(layout: Layout, ours: dict[str, Any], theirs: dict[str, Any], first_co
                 continue
         copy[tk] = src.to(t.dtype)
         rep.loaded.append(tk)
+    order = {k: i for i, k in enumerate(theirs)}  # report in the network's own order: the first mismatch first
+    rep.mismatched.sort(key=lambda m: order.get(m[0], len(order)))
+    rep.loaded.sort(key=lambda k: order.get(k, len(order)))
     region = [k for k in theirs if layout.in_encoder(k)]
     loaded = set(rep.loaded)
     misshapen = {m[0] for m in rep.mismatched}
@@ -266,6 +273,9 @@ def _choose(model: Any, ours: dict[str, Any], theirs: dict[str, Any], fam: str, 
         return _plan(LAYOUTS[layout], ours, theirs, first_conv, file)
     lib = _library(model)
     cands = [L for L in LAYOUTS.values() if fam in L.families]
+    if not cands:
+        raise WeightsMismatchError(f"{file}: no layout takes {fam} encoders; this warmstart knows "
+                                   f"{', '.join(sorted({f for L in LAYOUTS.values() for f in L.families}))}")
     plans = [_plan(L, ours, theirs, first_conv, file) for L in cands]
     # The layout whose key names find the most places (shape mismatches included: they are the
     # user's to see in the report), less the network's encoder keys it leaves empty; among equals,

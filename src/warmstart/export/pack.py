@@ -17,7 +17,7 @@ from ..run_folder import CHECKPOINTS, CORPUS_MANIFEST, HISTORY, RECIPE, SUMMARY,
 from .file import write_encoder_file
 from .manifest import build_manifest
 
-__all__ = ["export_encoder", "encoder_arrays", "WEIGHT_CHOICES"]
+__all__ = ["export_encoder", "packed_run", "encoder_arrays", "WEIGHT_CHOICES"]
 
 WEIGHT_CHOICES = ("auto", "online", "momentum")
 
@@ -145,6 +145,18 @@ def export_encoder(run: str | os.PathLike[str], out: str | os.PathLike[str], *, 
         Not a run folder, no checkpoint, no momentum copy when one is asked for, no decoder when
         one is asked for, or a checkpoint whose weights do not fit the method and encoder it records.
     """
+    arrays, manifest = packed_run(run, weights=weights, checkpoint=checkpoint, with_decoder=with_decoder)
+    path = write_encoder_file(out, arrays, manifest)
+    from .file import read_manifest
+
+    return path, read_manifest(path)
+
+
+def packed_run(run: str | os.PathLike[str], *, weights: str = "auto", checkpoint: str | os.PathLike[str] | None = None,
+               with_decoder: bool = False) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
+    """A run's chosen encoder (and decoder) as arrays, and the manifest without its ``tensors`` and
+    ``digest`` entries (the writer of each file format adds them). Parameters and errors as for
+    :func:`export_encoder`."""
     import torch
 
     if weights not in WEIGHT_CHOICES:
@@ -179,15 +191,12 @@ def export_encoder(run: str | os.PathLike[str], out: str | os.PathLike[str], *, 
     training = _training_section(run, ckpt, hp)
     if not training["finished"]:
         warnings.warn(f"{run}: the run stopped at step {training['steps']} of {training['planned_steps']}; "
-                      "exporting that state (the manifest says so)", stacklevel=2)
+                      "exporting that state (the manifest says so)", stacklevel=3)
     std = tuple(hp.get("standardization", (0.0, 1.0)))
     manifest = build_manifest(spec=enc.spec.to_dict(), first_conv=enc.first_conv, weights=chosen, corpus=corpus,
                               corpus_path=corpus_path, standardization=std, training=training,  # type: ignore[arg-type]
                               decoder=decoder)
-    path = write_encoder_file(out, arrays, manifest)
-    from .file import read_manifest
-
-    return path, read_manifest(path)
+    return arrays, manifest
 
 
 def encoder_arrays(encoder: Any) -> dict[str, np.ndarray]:
