@@ -358,7 +358,7 @@ def test_mismatched_depth_or_width_refused_under_strict_and_reported_otherwise(r
         ws.warm_start(wider, unet8)
     rep = ws.warm_start(wider, unet8, strict=False)
     assert rep.mismatched and ("conv_0.conv_1.conv.weight", (8, 8, 3, 3), (16, 16, 3, 3)) in rep.mismatched
-    with pytest.raises(WeightsMismatchError, match="takes resnet encoders"):
+    with pytest.raises(WeightsMismatchError, match="takes resnet/smp encoders, the file holds a unet encoder"):
         ws.warm_start(deeper, unet8, layout="smp")
     with pytest.raises(WeightsMismatchError, match="no layout places"):
         ws.warm_start(torch.nn.Linear(3, 4), r18)
@@ -371,9 +371,14 @@ def test_input_channel_rule_matches_timm_and_smp(src, dst):
     from segmentation_models_pytorch.encoders._utils import patch_first_conv
     from timm.models._manipulate import adapt_input_conv
 
+    import inspect
+
     w = torch.randn(8, src, 7, 7)
     ours = adapt_input_channels(w, dst)
-    torch.testing.assert_close(ours, adapt_input_conv(dst, w.clone(), base_chans=src))
+    if "base_chans" in inspect.signature(adapt_input_conv).parameters:
+        torch.testing.assert_close(ours, adapt_input_conv(dst, w.clone(), base_chans=src))
+    elif src == 3:  # timm before 1.0.23 (which dynamic-network-architectures pins) assumes 3 source channels
+        torch.testing.assert_close(ours, adapt_input_conv(dst, w.clone()))
     holder = torch.nn.Sequential(torch.nn.Conv2d(src, 8, 7, bias=False))
     holder[0].weight.data.copy_(w)
     patch_first_conv(holder, dst, default_in_channels=src, pretrained=True)

@@ -111,7 +111,9 @@ def build_parser() -> argparse.ArgumentParser:
     _add_recipe_options(pre, "smoke, cpu-lowres, gpu-resnet50-moco, ...", "pretrain.lr=3e-4", read_options=False)
     g = pre.add_argument_group("common settings (shortcuts for --set)")
     g.add_argument("--method", choices=["simclr", "moco_v2", "byol", "dense", "restore", "combined", "masked"])
-    g.add_argument("--encoder", metavar="NAME", help="encoder architecture: resnet_narrow, resnet18, resnet34, resnet50, unet")
+    g.add_argument("--encoder", metavar="NAME", help="encoder architecture: resnet_narrow, resnet18, resnet34, resnet50, "
+                   "unet, unet_residual, or PLANS.json:CONFIGURATION for the network an nnU-Net plans file describes "
+                   "(e.g. nnUNetPlans.json:3d_fullres)")
     g.add_argument("--epochs", type=int)
     g.add_argument("--max-steps", type=int)
     g.add_argument("--batch-size", type=int)
@@ -142,6 +144,11 @@ def build_parser() -> argparse.ArgumentParser:
     exp.add_argument("--checkpoint", metavar="CKPT", help="a checkpoint other than checkpoints/last.ckpt")
     exp.add_argument("--with-decoder", action="store_true",
                      help="also write the U-Net decoder the method trained (methods restore and combined)")
+    exp.add_argument("--for", dest="target", choices=["warmstart", "nnunet"], default="warmstart",
+                     help="nnunet: write the checkpoint nnU-Net's -pretrained_weights option loads (a run of the "
+                          "nnunet encoder: the whole network, the decoder as nnU-Net initializes it); default: the "
+                          "safetensors encoder file")
+    exp.add_argument("--seed", type=int, default=0, help="with --for nnunet: seed of the decoder's initialization")
     exp.add_argument("--json", action="store_true")
 
     ins = sub.add_parser("inspect", help="summarize an encoder file (and write its model card)",
@@ -365,7 +372,15 @@ _PRETRAIN_SHORTCUTS = {
 def cmd_pretrain(args: argparse.Namespace) -> int:
     from .recipe import load_recipe
 
-    recipe = load_recipe(args.recipe, _overrides(args, _PRETRAIN_SHORTCUTS, "pretrain."), default_section="pretrain")
+    from .pretrain.settings import encoder_option
+
+    overrides = _overrides(args, _PRETRAIN_SHORTCUTS, "pretrain.")
+    if args.encoder:
+        name, params = encoder_option(args.encoder)
+        if params:  # PLANS.json:CONFIGURATION: the nnU-Net network of that configuration
+            table = ", ".join(f"{k} = {json.dumps(v)}" for k, v in params.items())
+            overrides += [f"pretrain.encoder={json.dumps(name)}", f"pretrain.encoder_params={{ {table} }}"]
+    recipe = load_recipe(args.recipe, overrides, default_section="pretrain")
     try:
         from .pretrain.loop import pretrain  # imports torch: only this command pays for it
     except ImportError as err:
@@ -391,8 +406,18 @@ def cmd_export(args: argparse.Namespace) -> int:
         print(f"warmstart: error: export needs torch ({err}); install it with: pip install 'warmstart[train]'", file=sys.stderr)
         return EXIT_ERROR
     record_networks(args.run, args.checkpoint)  # runs made before networks.json existed
-    path, m = export_encoder(args.run, args.output, weights=args.weights, checkpoint=args.checkpoint,
-                             with_decoder=args.with_decoder)
+    if args.target == "nnunet":
+        from .errors import ExportError
+        from .export.nnunet_file import export_for_nnunet
+
+        if args.with_decoder:
+            raise ExportError("--with-decoder writes warmstart's U-Net decoder, which nnU-Net's network has no place "
+                              "for; export --for nnunet without it (the file holds nnU-Net's whole network)")
+        path, m = export_for_nnunet(args.run, args.output, weights=args.weights, checkpoint=args.checkpoint,
+                                    seed=args.seed)
+    else:
+        path, m = export_encoder(args.run, args.output, weights=args.weights, checkpoint=args.checkpoint,
+                                 with_decoder=args.with_decoder)
     if args.json:
         _print_json({"path": str(path), "manifest": m})
     else:
@@ -412,8 +437,15 @@ def cmd_inspect(args: argparse.Namespace) -> int:
     from .export.card import model_card, summary_text
     from .export.file import read_encoder_file, read_manifest
 
+    from .export.nnunet_file import is_nnunet_file
+
     verify = args.verify or bool(args.expect_sha256)
-    m = read_encoder_file(args.file)[0] if verify else read_manifest(args.file)
+    if is_nnunet_file(args.file):  # a file for nnU-Net (torch checkpoint): reading it needs torch
+        from .export.nnunet_file import read_nnunet_file
+
+        m = read_nnunet_file(args.file, verify=verify)[0]
+    else:
+        m = read_encoder_file(args.file)[0] if verify else read_manifest(args.file)
     if args.expect_sha256:
         got = (m.get("digest") or {}).get("sha256")
         if got != args.expect_sha256.strip().lower():

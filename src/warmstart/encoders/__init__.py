@@ -9,4 +9,4 @@ from .spec import EncoderSpec, Stage
 
 __all__ = ["EncoderSpec", "Stage", "build_encoder", "encoder_from_spec", "register", "ENCODERS"]
 
-from . import residual, resnet, unet  # noqa: E402,F401  (register the built-in encoders)
+from . import monai_dynunet, nnunet, residual, resnet, smp_encoder, unet  # noqa: E402,F401  (register the built-in encoders)

@@ -58,21 +58,34 @@ def _input_words(m: Mapping[str, Any]) -> str:
     return f"{inp['channels']} channel(s), 2-D patches of {inp['patch_size']} px"
 
 
+def _decoder_line(m: Mapping[str, Any]) -> str:
+    d, nn = m.get("decoder"), m.get("nnunet")
+    if nn:
+        return (f"decoder     {nn['decoder']}; the file holds nnU-Net's whole {nn['network_class_name'].rsplit('.', 1)[-1]} "
+                f"(configuration {nn.get('configuration') or 'as recorded'}) for its -pretrained_weights option, "
+                "which leaves out the segmentation layers")
+    if d:
+        return (f"decoder     U-Net decoder ({d['norm']} norm, {d['out_channels']} output channels), {d['parameters']:,} "
+                "parameters: loads into warmstart.UNet and smp.Unet with the same widths and bilinear upsampling")
+    return "decoder     none (encoder only)"
+
+
 def summary_text(m: Mapping[str, Any]) -> str:
     """A few lines on what an encoder file holds (``warmstart inspect``)."""
     e, c, t, v = m["encoder"], m["corpus"], m["training"], m["voxel_size_um"]
     st = m["standardization"]
-    params = ", ".join(f"{k}={val}" for k, val in e["spec"]["params"].items())
     stages = " ".join(f"{s['channels']}@{s['stride']}" for s in e["spec"]["stages"])
     rng = v.get("patch_range")
     d = m.get("decoder")
     n_enc = m["tensors"]["parameters"] - (d["parameters"] if d else 0)
+    if m.get("nnunet"):
+        n_enc = m["tensors"]["parameters"]  # the whole network
+    params = ", ".join(f"{k}={val}" for k, val in e["spec"]["params"].items() if k not in ("architecture", "library"))
     lines = [
-        f"encoder     {e['spec']['name']} ({params}); {n_enc:,} parameters; {e['weights']} weights",
+        f"encoder     {e['spec']['name']} ({params}); {n_enc:,} parameters{' (whole network)' if m.get('nnunet') else ''}; "
+        f"{e['weights']} weights",
         f"stages      {stages}  (channels@stride)",
-        (f"decoder     U-Net decoder ({d['norm']} norm, {d['out_channels']} output channels), {d['parameters']:,} "
-         "parameters: loads into warmstart.UNet and smp.Unet with the same widths and bilinear upsampling"
-         if d else "decoder     none (encoder only)"),
+        _decoder_line(m),
         f"input       {_input_words(m)}, voxel size {_um_range(rng)}",
         f"intensity   {intensity_line(m)}",
         f"standardize (x - {st['mean']:.5g}) / {st['std']:.5g}",
@@ -88,6 +101,18 @@ def summary_text(m: Mapping[str, Any]) -> str:
     if c.get("clinical"):
         lines.append(f"caution     clinical data: {CLINICAL_CAUTION}")
     return "\n".join(lines)
+
+
+def _shown_params(spec: Mapping[str, Any]) -> dict[str, Any]:
+    """A spec's parameters without the bulky ones (an nnU-Net architecture entry is shown by name)."""
+    p = dict(spec["params"])
+    arch = p.pop("architecture", None)
+    lib = p.pop("library", None)
+    if arch:
+        p["network"] = arch["network_class_name"].rsplit(".", 1)[-1]
+    if lib:
+        p["built with"] = f"{lib['name']} {lib['version']}"
+    return p
 
 
 def _context_words(m: Mapping[str, Any]) -> str:
@@ -119,7 +144,7 @@ unlabeled images, meant as the warm start of a segmentation network (U-Net encod
 
 ## What it is
 
-- Architecture: `{e['spec']['name']}` with {e['spec']['params']}; {m['tensors']['parameters']:,} parameters
+- Architecture: `{e['spec']['name']}` with {_shown_params(e['spec'])}; {m['tensors']['parameters']:,} parameters
   ({e['weights']} weights); feature maps (channels@stride): {', '.join(f"{s['channels']}@{s['stride']}" for s in e['spec']['stages'])}
 - File integrity: sha256 of the tensors `{m['tensors']['sha256']}`; fingerprint of the whole file (manifest and
   tensors; compare it with the one the file's publisher gives) `{(m.get('digest') or {}).get('sha256', 'none')}`

@@ -9,10 +9,14 @@ under ``strict``). Adding a layout is one entry in :data:`LAYOUTS`.
 layout                 target network                                  our encoders
 =====================  ==============================================  ================
 ``warmstart``          :class:`warmstart.unet.UNet` (``encoder.*``)    all
-``smp``                segmentation_models_pytorch Unet, UnetPlusPlus,  ResNet-18/34/50
-                       FPN, ... with a ``resnet18/34/50`` encoder
+``smp``                segmentation_models_pytorch Unet, UnetPlusPlus,  ResNet-18/34/50, and
+                       FPN, ... with a ``resnet18/34/50`` encoder,     smp (any encoder smp
+                       or the encoder the file's smp spec names        builds: same name, depth)
 ``monai-flexibleunet`` MONAI FlexibleUNet, ``resnet50`` backbone       ResNet-50
 ``monai-basicunet``    MONAI BasicUNet (5 levels)                      U-Net, depth 5
+``monai-dynunet``      MONAI DynUNet (its contracting path)            monai_dynunet
+``nnunet``             nnU-Net's networks of dynamic-network-          nnunet (built from
+                       architectures (``encoder.*``)                   the same plans)
 ``torchvision``        torchvision ResNet (``fc`` stays as it is)      ResNet-18/34/50
 ``timm``               timm ResNet, also ``features_only``             ResNet-18/34/50
 ``encoder``            a bare warmstart encoder                        all
@@ -155,9 +159,12 @@ ResNet-50: (1024, 512, 256, 64, 32)), batch norm, no attention and
 
 LAYOUTS: dict[str, Layout] = {L.name: L for L in (
     Layout("warmstart", "warmstart's reference U-Net (encoder.*, decoder.*)", _prefixed("encoder."), _under("encoder."),
-           ("resnet", "unet"), "warmstart", decoder=DecoderLayout(lambda ours: {k: k for k in ours}, _under("decoder."))),
-    Layout("smp", "segmentation_models_pytorch network with a ResNet encoder (encoder.*)", _prefixed("encoder."),
-           _under("encoder."), ("resnet",), "segmentation_models_pytorch", decoder=SMP_UNET_DECODER),
+           ("resnet", "unet", "unet_residual", "nnunet", "smp", "monai_dynunet"), "warmstart",
+           decoder=DecoderLayout(lambda ours: {k: k for k in ours}, _under("decoder."))),
+    Layout("smp", "segmentation_models_pytorch network with a ResNet encoder or the encoder smp built (encoder.*)",
+           _prefixed("encoder."), _under("encoder."), ("resnet", "smp"), "segmentation_models_pytorch",
+           "build the smp network with the file's encoder name and depth (the manifest's encoder spec)",
+           decoder=SMP_UNET_DECODER),
     Layout("monai-flexibleunet", "MONAI FlexibleUNet with a ResNet backbone (encoder.*)", _prefixed("encoder."),
            _under("encoder."), ("resnet",), "monai",
            "MONAI's resnet18/34 backbones have parameter-free 'type A' shortcuts where ours has 1x1 convolutions: "
@@ -165,8 +172,17 @@ LAYOUTS: dict[str, Layout] = {L.name: L for L in (
     Layout("monai-basicunet", "MONAI BasicUNet (conv_0, down_1..down_4)", _basicunet_key, _basicunet_part,
            ("unet",), "monai", "BasicUNet has 5 levels: it takes a unet encoder of depth 5 whose widths equal its "
            "features[:5] (and norm='batch', act='relu' to compute what our encoder computed)"),
+    Layout("monai-dynunet", "MONAI DynUNet (input_block, downsamples, bottleneck)", lambda k: k,
+           lambda k: k.startswith(("input_block.", "downsamples.", "bottleneck.")), ("monai_dynunet",), "monai",
+           "build DynUNet with the file's filters, strides, kernel sizes, norm, activation and res_block (the "
+           "manifest's encoder spec)"),
+    Layout("nnunet", "nnU-Net network of dynamic-network-architectures (encoder.*; its decoder shares those modules)",
+           _prefixed("encoder."), _under("encoder."), ("nnunet",), "dynamic_network_architectures",
+           "the file's encoder was built from one nnU-Net plans configuration: build the network from the same plans "
+           "and configuration (the manifest's encoder spec holds its architecture entry)"),
     Layout("torchvision", "torchvision ResNet (its fc layer is left as it is)", lambda k: k, _not_classifier,
            ("resnet",), "torchvision"),
     Layout("timm", "timm ResNet, including features_only models", lambda k: k, _not_classifier, ("resnet",), "timm"),
-    Layout("encoder", "a bare warmstart encoder", lambda k: k, lambda k: True, ("resnet", "unet"), "warmstart"),
+    Layout("encoder", "a bare warmstart encoder", lambda k: k, lambda k: True,
+           ("resnet", "unet", "unet_residual", "nnunet", "smp", "monai_dynunet"), "warmstart"),
 )}

@@ -221,7 +221,7 @@ def pretrain(corpus: str | os.PathLike[str], out: str | os.PathLike[str], settin
     out.mkdir(parents=True, exist_ok=True)
     first_process = _first_process()
     store = open_corpus(corpus)
-    s = _for_spatial_dims(s, store.spatial_dims, corpus)
+    s = _for_spatial_dims(_resolved_encoder(s), store.spatial_dims, corpus)
     names = {e["name"]: e["position"] for e in store.manifest["sources"]}
     unknown = sorted(set(s.source_weights) - set(names))
     if unknown:
@@ -265,7 +265,10 @@ def pretrain(corpus: str | os.PathLike[str], out: str | os.PathLike[str], settin
     trainer.fit_loop.max_epochs = math.ceil(total / steps_per_epoch)
     position.steps_per_epoch = steps_per_epoch
     channels = int(store.patches.shape[1])
-    module = PretrainModule(s.to_dict(), channels, total, _standardization(store.manifest, s))
+    try:
+        module = PretrainModule(s.to_dict(), channels, total, _standardization(store.manifest, s))
+    except ValueError as err:  # the encoder's or the method's constructor refused its parameters
+        raise PretrainError(f"encoder {s.encoder!r} with method {s.method!r}: {err}") from err
     if first_process:  # one writer under DDP
         write_json(out / RECIPE, {"pretrain": s.to_dict(), "corpus": str(store.path)})
         # The corpus manifest travels with the run, so an export works after the corpus has moved.
@@ -309,6 +312,22 @@ def pretrain(corpus: str | os.PathLike[str], out: str | os.PathLike[str], settin
     return PretrainResult(out, int(trainer.global_step), summary["final_loss"], summary)
 
 
+def _resolved_encoder(s: PretrainSettings) -> PretrainSettings:
+    """An nnU-Net encoder given as a plans file and a configuration, resolved into that
+    configuration's architecture entry: the run's recipe.json then rebuilds the network (on resume
+    and in every DDP process) without the plans file."""
+    params = dict(s.encoder_params)
+    if s.encoder != "nnunet" or "plans" not in params:
+        return s
+    from ..encoders.nnunet import architecture_from_plans
+
+    try:
+        arch = architecture_from_plans(params.pop("plans"), str(params.get("configuration")))
+    except ValueError as err:
+        raise PretrainError(str(err)) from err
+    return dataclasses.replace(s, encoder_params={**params, "architecture": arch})
+
+
 def _for_spatial_dims(s: PretrainSettings, dims: int, corpus: Any) -> PretrainSettings:
     """The settings with the encoder built for the corpus's spatial dims (recorded in the run's
     recipe.json), or a clear refusal of an encoder that has no 3-D form (every built-in method
@@ -321,6 +340,8 @@ def _for_spatial_dims(s: PretrainSettings, dims: int, corpus: Any) -> PretrainSe
     if dims == 2:
         if stated not in (None, 2):
             raise PretrainError(f"{corpus}: a corpus of 2-D patches, but pretrain.encoder_params sets spatial_dims = {stated}")
+        if s.encoder == "nnunet":  # its dims come from the plans: let the encoder refuse a 3-D configuration
+            return dataclasses.replace(s, encoder_params={**s.encoder_params, "spatial_dims": 2})
         return s
     if s.encoder in ENCODERS and "spatial_dims" not in inspect.signature(ENCODERS[s.encoder]).parameters:
         raise PretrainError(f"{corpus}: a corpus of 3-D cubes, and encoder {s.encoder!r} is 2-D only; "

@@ -87,9 +87,13 @@ class PretrainSettings:
     Parameters
     ----------
     encoder : str
-        Registry name (``resnet_narrow``, ``resnet18``, ``resnet50``, ``unet``, ...).
+        Registry name (``resnet_narrow``, ``resnet18``, ``resnet50``, ``unet``, ``unet_residual``,
+        ``nnunet``, ...).
     encoder_params : dict
-        Constructor parameters; ``in_channels`` defaults to the corpus's channels.
+        Constructor parameters; ``in_channels`` defaults to the corpus's channels. For
+        ``nnunet``: ``plans`` (an nnU-Net plans JSON) and ``configuration`` (``2d``,
+        ``3d_fullres``, ...), which the run resolves into the configuration's ``architecture``
+        entry (recorded in ``recipe.json``, so the plans file is not needed afterwards).
     method : str
         ``simclr``, ``moco_v2``, ``byol`` (global contrastive), ``dense`` (dense contrastive with
         locations matched from the views' geometry), ``restore`` (restoration of corrupted
@@ -193,3 +197,22 @@ class PretrainSettings:
     @classmethod
     def from_dict(cls, d: Mapping[str, Any], where: str = "pretrain") -> "PretrainSettings":
         return settings_from_dict(cls, d, where)
+
+
+def encoder_option(value: str) -> tuple[str, dict[str, Any]]:
+    """``--encoder`` in words: a registry name, or ``PLANS.json:CONFIGURATION`` for the nnU-Net
+    network of one configuration of a plans file.
+
+    Examples
+    --------
+    >>> encoder_option("unet")
+    ('unet', {})
+    >>> encoder_option("nnUNetPlans.json:3d_fullres")
+    ('nnunet', {'plans': 'nnUNetPlans.json', 'configuration': '3d_fullres'})
+    """
+    plans, sep, configuration = value.rpartition(":")
+    if sep and plans.lower().endswith(".json"):
+        if not configuration:
+            raise RecipeError(f"--encoder {value}: name the plans' configuration after the colon, e.g. {plans}:3d_fullres")
+        return "nnunet", {"plans": plans, "configuration": configuration}
+    return value, {}

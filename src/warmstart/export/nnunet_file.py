@@ -1,0 +1,147 @@
+"""The file nnU-Net loads: a pretrained nnU-Net network as the checkpoint its
+``-pretrained_weights`` option takes.
+
+nnU-Net's loader (``load_pretrained_weights`` in nnunetv2) reads ``checkpoint["network_weights"]``
+and requires every key of its network except the segmentation layers (``.seg_layers.``), with
+equal shapes. So the file holds the whole network: the pretrained encoder, and a decoder that
+carries the initialization nnU-Net itself gives a new network (the network's own
+``initialize``), because warmstart's decoder methods train warmstart's decoder, not nnU-Net's;
+the manifest's ``nnunet`` section and ``warmstart inspect`` say so.
+
+The file is written with ``torch.save`` and holds only tensors and plain values: the network's
+state dict, and the warmstart manifest as a JSON string (with the same ``tensors`` sha256 and
+``digest`` as an encoder file), so ``torch.load(..., weights_only=True)`` reads it.
+"""
+from __future__ import annotations
+
+import json
+import os
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from ..errors import ExportError
+from .file import METADATA_KEY, _manifest, manifest_digest, tensor_digest
+from .pack import packed_run
+
+__all__ = ["export_for_nnunet", "read_nnunet_file", "is_nnunet_file", "WEIGHTS_KEY"]
+
+WEIGHTS_KEY = "network_weights"  # what nnU-Net's loader reads
+
+
+def is_nnunet_file(path: str | os.PathLike[str]) -> bool:
+    """Whether ``path`` is a torch checkpoint (a zip archive), as :func:`export_for_nnunet` writes."""
+    try:
+        with open(path, "rb") as fh:
+            return fh.read(4) == b"PK\x03\x04"
+    except OSError:
+        return False
+
+
+def export_for_nnunet(run: str | os.PathLike[str], out: str | os.PathLike[str], *, weights: str = "auto",
+                      checkpoint: str | os.PathLike[str] | None = None, seed: int = 0) -> tuple[Path, dict[str, Any]]:
+    """Write a run's pretrained nnU-Net network as the checkpoint nnU-Net's ``-pretrained_weights`` loads.
+
+    Parameters
+    ----------
+    run : path
+        A pretraining run whose encoder is ``nnunet`` (built from an nnU-Net plans file).
+    out : path
+        The file to write (e.g. ``pretrained.pth``); written atomically.
+    weights, checkpoint
+        As for :func:`~warmstart.export.pack.export_encoder`.
+    seed : int
+        Seed of the decoder's initialization (nnU-Net's own scheme), so an export is repeatable.
+
+    Returns
+    -------
+    (Path, dict)
+        The file and its manifest.
+
+    Raises
+    ------
+    ExportError
+        The run's encoder is not an nnU-Net network, or anything :func:`export_encoder` refuses.
+    """
+    import torch
+
+    from ..encoders.nnunet import build_network
+
+    arrays, manifest = packed_run(run, weights=weights, checkpoint=checkpoint, with_decoder=False)
+    spec = manifest["encoder"]["spec"]
+    if spec["name"] != "nnunet":
+        raise ExportError(f"{run}: export --for nnunet needs a run pretrained with the nnunet encoder (pretrain "
+                          f"--encoder nnunet with an nnU-Net plans file and configuration); this run's encoder is "
+                          f"{spec['name']!r}: export it without --for")
+    params = spec["params"]
+    torch.manual_seed(int(seed))
+    net = build_network(params["architecture"], int(params["in_channels"]))
+    try:
+        net.encoder.load_state_dict({k: torch.from_numpy(np.array(v)) for k, v in arrays.items()}, strict=True)
+    except RuntimeError as e:
+        raise ExportError(f"{run}: the trained encoder does not fit the nnU-Net network its spec describes ({e})") from e
+    state = {k: v.detach().cpu().contiguous().clone() for k, v in net.state_dict().items()}
+    np_state = {k: v.numpy() for k, v in state.items()}
+    full = dict(manifest)
+    full["nnunet"] = {
+        "checkpoint_key": WEIGHTS_KEY, "network_class_name": params["architecture"]["network_class_name"],
+        "configuration": params.get("configuration"), "in_channels": int(params["in_channels"]),
+        "pretrained": ["encoder"], "decoder": "not pretrained: nnU-Net's own initialization of a new network "
+                                              f"(the network's initialize, seed {int(seed)})",
+        "not_loaded_by_nnunet": ".seg_layers. (the segmentation layers: nnU-Net keeps its own)",
+    }
+    full["tensors"] = {"count": len(np_state), "sha256": tensor_digest(np_state),
+                       "parameters": int(sum(a.size for k, a in np_state.items() if not k.endswith("num_batches_tracked")))}
+    full["digest"] = manifest_digest(full)
+    path = Path(out)
+    _check_target(path)
+    tmp = path.with_name(f".{path.name}.partial")
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        torch.save({WEIGHTS_KEY: state, METADATA_KEY: json.dumps(full, allow_nan=False)}, tmp)
+        os.replace(tmp, path)
+    except BaseException as err:
+        tmp.unlink(missing_ok=True)  # never leave a partial file behind
+        if isinstance(err, OSError):
+            raise ExportError(f"{path}: cannot be written ({err.strerror or err}); nothing was left behind") from err
+        raise
+    return path, read_nnunet_file(path)[0]
+
+
+def _check_target(path: Path) -> None:
+    if path.is_dir():
+        raise ExportError(f"{path}: is a folder; give the file's name, e.g. {path / 'pretrained.pth'}")
+    if path.exists():
+        try:
+            read_nnunet_file(path, verify=False)
+        except ExportError:
+            raise ExportError(f"{path}: exists and is not a warmstart file for nnU-Net; not overwriting it "
+                              "(choose another name or remove it yourself)") from None
+
+
+def read_nnunet_file(path: str | os.PathLike[str], verify: bool = True) -> tuple[dict[str, Any], dict[str, Any]]:
+    """Manifest and network state dict of a file written by :func:`export_for_nnunet`.
+
+    Read with ``torch.load(..., weights_only=True)`` (no pickled code runs); the manifest's digest
+    and, with ``verify``, the tensors' sha256 are checked as for an encoder file.
+    """
+    import torch
+
+    if not Path(path).is_file():
+        raise ExportError(f"{path}: no such file")
+    try:
+        ck = torch.load(path, map_location="cpu", weights_only=True)
+    except Exception as e:
+        raise ExportError(f"{path}: not a readable torch checkpoint ({e})") from e
+    if not isinstance(ck, dict) or WEIGHTS_KEY not in ck or METADATA_KEY not in ck:
+        raise ExportError(f"{path}: a torch checkpoint without a warmstart manifest; it was not written by "
+                          "warmstart export --for nnunet")
+    manifest = _manifest({METADATA_KEY: ck[METADATA_KEY]}, path)
+    state = ck[WEIGHTS_KEY]
+    if verify:
+        got = tensor_digest({k: v.numpy() for k, v in state.items()})
+        if got != manifest["tensors"]["sha256"]:
+            raise ExportError(f"{path}: the tensors do not match the sha256 in the file's manifest: the file was "
+                              "damaged or altered; refusing it")
+    return manifest, state
