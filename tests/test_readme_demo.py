@@ -135,6 +135,7 @@ PYTHON_BLOCKS = re.findall(r"```python\n(.*?)```", README, flags=re.S)
 def test_readme_python_snippets_run(tmp_path, monkeypatch):
     import warnings
 
+    import numpy as np
     import tifffile
     from conftest import textured, tiny_corpus
 
@@ -145,11 +146,33 @@ def test_readme_python_snippets_run(tmp_path, monkeypatch):
 
     corpus = tiny_corpus(tmp_path, n=2, shape=(8, 64, 64), sampling=dict(patch_size=32, stride=16))
     quick = dict(batch_size=8, max_steps=1, num_workers=0, precision="32-true", accelerator="cpu")
-    for name, enc, method in (("encoder", "resnet18", "simclr"), ("unet-encoder", "unet", "simclr"),
-                              ("whole-unet", "resnet18", "restore")):
-        pretrain(corpus, tmp_path / name, PretrainSettings(encoder=enc, method=method, **quick), progress=False)
+    for name, enc, method, params in (("encoder", "resnet18", "simclr", {}), ("unet-encoder", "unet", "simclr", {}),
+                                      ("whole-unet", "resnet18", "restore", {}),
+                                      ("smp-encoder", "smp", "simclr", {"encoder_name": "efficientnet-b0"})):
+        pretrain(corpus, tmp_path / name, PretrainSettings(encoder=enc, encoder_params=params, method=method, **quick),
+                 progress=False)
         ws.export_encoder(tmp_path / name, tmp_path / f"{name}.safetensors", with_decoder=method == "restore")
     tifffile.imwrite(tmp_path / "slice.tif", textured(shape=(1, 64, 64), seed=7)[0])
+    # The 3-D and nnU-Net sections: a cube corpus, a depth-5 3-D U-Net run and an nnU-Net run
+    # from a tiny plans file, exported as those sections name their files.
+    from tiny_plans import PLANS
+
+    from warmstart.corpus.build import build_corpus
+    from warmstart.corpus.settings import CorpusSettings, SamplingSettings
+    from warmstart.export.nnunet_file import export_for_nnunet
+
+    (tmp_path / "vols").mkdir()
+    np.save(tmp_path / "vols" / "v.npy", textured(shape=(32, 48, 48), seed=3))
+    cubes = build_corpus(tmp_path / "vols", tmp_path / "cubes.zarr", CorpusSettings(sampling=SamplingSettings(
+        spatial_dims=3, patch_size=16, assume_cubic_voxels=True)), report=False, progress=False).path
+    (tmp_path / "nnUNetPlans.json").write_text(json.dumps(PLANS))
+    for name, enc, params in (("cubes-encoder", "unet", {"base_width": 4, "depth": 5}),
+                              ("nnunet-encoder", "nnunet", {"plans": str(tmp_path / "nnUNetPlans.json"),
+                                                            "configuration": "3d_fullres"}),
+                              ("dynunet-encoder", "monai_dynunet", {"filters": [4, 8, 16, 32], "strides": [1, 2, 2, 2]})):
+        pretrain(cubes, tmp_path / name, PretrainSettings(encoder=enc, encoder_params=params, **quick), progress=False)
+        ws.export_encoder(tmp_path / name, tmp_path / f"{name}.safetensors")
+    export_for_nnunet(tmp_path / "nnunet-encoder", tmp_path / "pretrained.pth")
     monkeypatch.chdir(tmp_path)
     assert len(PYTHON_BLOCKS) >= 3
     assert any("segmentation_models_pytorch" in b for b in PYTHON_BLOCKS) and any("monai" in b for b in PYTHON_BLOCKS)
