@@ -163,3 +163,55 @@ def test_two_input_channels_adapt_both_names_of_the_first_convolution(run3d):
         "encoder.stages.0.0.convs.0.all_modules.0.weight 1 -> 2 channels",
         "encoder.stages.0.0.convs.0.conv.weight 1 -> 2 channels"]
     assert tuple(net(torch.zeros(1, 2, 16, 16, 16)).shape) == (1, 2, 16, 16, 16)
+
+
+def test_restoration_trains_nnunets_own_decoder_and_the_file_carries_it(cubes, plans, tmp_path):
+    from nnunetv2.run.load_pretrained_weights import load_pretrained_weights
+
+    assert main(["-q", "pretrain", str(cubes), "-o", str(tmp_path / "run"), "--recipe", "smoke-3d", "--encoder",
+                 f"{plans}:3d_fullres", "--method", "restore", "--max-steps", "2", "--deterministic"]) == 0
+    networks = json.loads((tmp_path / "run" / "networks.json").read_text())
+    assert networks["decoder"]["kind"] == "nnunet"
+    ck = torch.load(tmp_path / "run" / "checkpoints" / "last.ckpt", weights_only=True)["state_dict"]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        assert main(["-q", "export", str(tmp_path / "run"), "--for", "nnunet", "-o", str(tmp_path / "p.pth")]) == 0
+        assert main(["-q", "export", str(tmp_path / "run"), "--with-decoder", "-o", str(tmp_path / "w.safetensors")]) == 0
+    net = _nnunet_network("3d_fullres")
+    load_pretrained_weights(net, str(tmp_path / "p.pth"))  # nnU-Net's own loader
+    prefix = networks["decoder"]["key_prefix"] + "decoder."
+    trained = {k[len(prefix):]: v for k, v in ck.items() if k.startswith(prefix)}
+    compared = 0
+    for k, v in net.decoder.state_dict().items():
+        if k.startswith(("stages.", "transpconvs.")):  # the decoder proper: as trained
+            torch.testing.assert_close(v, trained[k], rtol=0, atol=0)
+            compared += 1
+    assert compared > 0
+    from warmstart.export.nnunet_file import read_nnunet_file
+
+    m = read_nnunet_file(tmp_path / "p.pth")[0]
+    assert m["nnunet"]["pretrained"] == ["encoder", "decoder"] and "pretrained with the encoder by restore" in \
+        m["nnunet"]["decoder"]
+    # our own warm start places the same decoder into a network nnU-Net builds
+    other = _nnunet_network("3d_fullres")
+    rep = ws.warm_start(other, tmp_path / "w.safetensors", decoder=True)
+    assert rep.complete and rep.decoder and "loaded" in rep.decoder_note
+    for k in rep.decoder:
+        torch.testing.assert_close(other.state_dict()[k], trained[k[len("decoder."):]], rtol=0, atol=0)
+
+
+def test_a_missing_client_library_is_named_with_its_pip_line(run3d, monkeypatch):
+    import importlib.metadata
+
+    from warmstart.errors import ExportError
+
+    real = importlib.metadata.version
+
+    def version(name):
+        if name == "dynamic-network-architectures":
+            raise importlib.metadata.PackageNotFoundError(name)
+        return real(name)
+
+    monkeypatch.setattr(importlib.metadata, "version", version)
+    with pytest.raises(ExportError, match="pip install dynamic-network-architectures"):
+        ws.load_encoder(run3d / "enc.safetensors")

@@ -9,7 +9,9 @@ the way nnU-Net's ``get_network_from_plans`` does (the same class, the same argu
 initialization), so a file pretrained here fits the user's network key for key.
 
 The encoder warmstart pretrains is ``network.encoder`` itself (its skip outputs are the stage
-maps); its state-dict keys are the network's ``encoder.*`` keys without the prefix. The spec
+maps); its state-dict keys are the network's ``encoder.*`` keys without the prefix. Methods that
+train a decoder train the network's own decoder (:func:`nnunet_decoder`), so a restoration run
+pretrains the whole nnU-Net network but its segmentation layers. The spec
 records the architecture entry (not the plans file's path), the configuration's name and the
 library's version, so an encoder file rebuilds its network without the plans file.
 
@@ -24,10 +26,12 @@ import pydoc
 from pathlib import Path
 from typing import Any, Mapping
 
-from .registry import register
+from torch import nn
+
+from .registry import register, register_own_decoder
 from .spec import EncoderSpec, Stage
 
-__all__ = ["architecture_from_plans", "build_network", "nnunet_encoder", "LIBRARY"]
+__all__ = ["architecture_from_plans", "build_network", "nnunet_encoder", "nnunet_decoder", "NNUNetDecoder", "LIBRARY"]
 
 LIBRARY = "dynamic_network_architectures"
 PIP_LINE = "pip install dynamic-network-architectures"
@@ -174,8 +178,9 @@ def nnunet_encoder(in_channels: int = 1, plans: str | None = None, configuration
     encoder = net.encoder
     conv_name = str(arch["arch_kwargs"].get("conv_op", ""))
     dims = 3 if conv_name.endswith("3d") else 2
+    label = repr(configuration) if configuration else "(architecture as given)"
     if spatial_dims is not None and int(spatial_dims) != dims:
-        raise ValueError(f"the nnunet configuration {configuration or ''!s} builds a {dims}-D network ({conv_name}), "
+        raise ValueError(f"the nnunet configuration {label} builds a {dims}-D network ({conv_name}), "
                          f"not a {spatial_dims}-D one: choose a {'3d_fullres' if spatial_dims == 3 else '2d'} "
                          "configuration for this corpus")
     kwargs = arch["arch_kwargs"]
@@ -185,7 +190,7 @@ def nnunet_encoder(in_channels: int = 1, plans: str | None = None, configuration
     strides = _stage_strides(kwargs, n_stages, dims)
     uneven = [s for s in strides if len(set(s)) > 1]
     if uneven:
-        raise ValueError(f"the nnunet configuration {configuration or ''!s} downsamples the axes unevenly (cumulative "
+        raise ValueError(f"the nnunet configuration {label} downsamples the axes unevenly (cumulative "
                          f"strides {strides}); this warmstart pretrains networks with the same stride along every "
                          "axis (cubes of cubic voxels): plan nnU-Net for isotropic spacing, or use a 2d configuration")
     params: dict[str, Any] = {"in_channels": int(in_channels), "architecture": arch}
@@ -196,7 +201,40 @@ def nnunet_encoder(in_channels: int = 1, plans: str | None = None, configuration
     params["library"] = {"name": LIBRARY, "version": _library_version()}
     encoder.spec = EncoderSpec("nnunet", params, tuple(Stage(c, s[0]) for c, s in zip(features, strides)))
     # The first convolution in module order sees the input (stem.convs.0.conv, stages.0.0.convs.0.conv, ...).
-    from torch import nn
-
     encoder.first_conv = next(name for name, m in encoder.named_modules() if isinstance(m, (nn.Conv2d, nn.Conv3d)))
     return encoder
+
+
+class NNUNetDecoder(nn.Module):
+    """nnU-Net's own decoder for an ``nnunet`` encoder, ending in ``out_channels`` maps at the input's resolution.
+
+    The decoder is built with the rest of the network (same architecture entry, ``num_classes =
+    out_channels``, nnU-Net's initialization); it keeps a reference to its encoder, as in nnU-Net's
+    network, and here that reference is the encoder being trained, so its keys are the network's
+    ``decoder.*`` keys (``decoder.encoder.*`` being the shared encoder). Its last segmentation
+    layer gives the output (deep supervision off), so a restoration loss trains the whole decoder.
+
+    ``forward(feats, size)`` -> (B, out_channels, *size); ``.decoder`` is
+    dynamic-network-architectures' decoder module.
+    """
+
+    kind = "nnunet"
+    norm = None  # the architecture entry says what the decoder is
+
+    def __init__(self, encoder: nn.Module, out_channels: int) -> None:
+        super().__init__()
+        params = encoder.spec.params
+        net = build_network(params["architecture"], int(params.get("in_channels", 1)), num_classes=int(out_channels))
+        self.decoder = net.decoder
+        self.decoder.encoder = encoder  # nnU-Net's decoder refers to its encoder: share the trained one
+        self.decoder.deep_supervision = False
+        self.out_channels = int(out_channels)
+
+    def forward(self, feats: Any, size: Any = None) -> Any:
+        return self.decoder(list(feats))
+
+
+@register_own_decoder("nnunet")
+def nnunet_decoder(encoder: Any, out_channels: int) -> NNUNetDecoder:
+    """The network's own decoder for an ``nnunet`` encoder (see :class:`NNUNetDecoder`)."""
+    return NNUNetDecoder(encoder, out_channels)

@@ -6,9 +6,11 @@ from typing import Any, Callable
 
 from .spec import EncoderSpec
 
-__all__ = ["ENCODERS", "register", "build_encoder", "encoder_from_spec"]
+__all__ = ["ENCODERS", "OWN_DECODERS", "register", "register_own_decoder", "build_encoder", "encoder_from_spec",
+           "own_decoder"]
 
 ENCODERS: dict[str, Callable[..., Any]] = {}
+OWN_DECODERS: dict[str, Callable[..., Any]] = {}
 
 
 def register(name: str) -> Callable[[Callable[..., Any]], Callable[..., Any]]:
@@ -57,3 +59,24 @@ def encoder_from_spec(spec: EncoderSpec | dict[str, Any]) -> Any:
         raise ValueError(f"encoder {spec.name!r} built with {dict(spec.params)} has stages {enc.spec.stages}, "
                          f"the spec records {spec.stages}")
     return enc
+
+
+def register_own_decoder(name: str) -> Callable[[Callable[..., Any]], Callable[..., Any]]:
+    """Decorator: ``own_decoder(encoder, out_channels)`` of an encoder registered as ``name`` calls it.
+
+    For encoders that come from a whole network (a client library's): the methods that train a
+    decoder then train that network's own decoder instead of warmstart's U-Net decoder.
+    """
+
+    def deco(fn: Callable[..., Any]) -> Callable[..., Any]:
+        OWN_DECODERS[name] = fn
+        return fn
+
+    return deco
+
+
+def own_decoder(encoder: Any, out_channels: int) -> Any | None:
+    """The decoder of the network ``encoder`` comes from, with ``out_channels`` output maps at the
+    input's resolution (``forward(feats, size)``), or None when the encoder brings none."""
+    fn = OWN_DECODERS.get(getattr(getattr(encoder, "spec", None), "name", ""))
+    return fn(encoder, out_channels) if fn else None

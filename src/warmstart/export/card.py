@@ -64,6 +64,9 @@ def _decoder_line(m: Mapping[str, Any]) -> str:
         return (f"decoder     {nn['decoder']}; the file holds nnU-Net's whole {nn['network_class_name'].rsplit('.', 1)[-1]} "
                 f"(configuration {nn.get('configuration') or 'as recorded'}) for its -pretrained_weights option, "
                 "which leaves out the segmentation layers")
+    if d and d.get("kind") == "nnunet":
+        return (f"decoder     nnU-Net's own decoder, {d['parameters']:,} parameters (without its segmentation layers): "
+                "loads into the nnU-Net network of the same configuration")
     if d:
         return (f"decoder     U-Net decoder ({d['norm']} norm, {d['out_channels']} output channels), {d['parameters']:,} "
                 "parameters: loads into warmstart.UNet and smp.Unet with the same widths and bilinear upsampling")
@@ -134,7 +137,10 @@ def model_card(m: Mapping[str, Any], title: str = "Encoder") -> str:
     clinical = c.get("clinical") or any("CT" == mod or "MR" == mod for mod in c["modalities"])
     caution = f"\n\n**Caution.** {CLINICAL_CAUTION}" if clinical else \
         "\n\nResearch use. If you apply it to clinical data: " + CLINICAL_CAUTION
-    decoder_use = ("\n\nThe file holds the U-Net decoder too: `warmstart.UNet.from_file` and segmentation_models_pytorch's "
+    nn_decoder = (m.get("decoder") or {}).get("kind") == "nnunet"
+    decoder_use = ("\n\nThe file holds nnU-Net's own decoder too (without its segmentation layers): `warm_start` "
+                   "loads it into the nnU-Net network of the same configuration." if nn_decoder else
+                   "\n\nThe file holds the U-Net decoder too: `warmstart.UNet.from_file` and segmentation_models_pytorch's "
                    "`Unet` with the same decoder widths and `decoder_interpolation='bilinear'` load both; other networks "
                    "get the encoder alone (`warm_start`'s report says which)." if m.get("decoder") else "")
     return f"""# {title}: {e['spec']['name']} pretrained with {t['method']}

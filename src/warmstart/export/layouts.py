@@ -152,6 +152,12 @@ def _smp_decoder_check(model: object) -> str | None:
     return None
 
 
+def _nnunet_decoder_part(k: str) -> bool:
+    """nnU-Net's decoder keys that a pretrained decoder fills: not the encoder it refers to
+    (``decoder.encoder.*``, the same tensors as ``encoder.*``), not the segmentation layers."""
+    return k.startswith("decoder.") and not k.startswith("decoder.encoder.") and ".seg_layers." not in k
+
+
 SMP_UNET_DECODER = DecoderLayout(_smp_decoder_keys, _under("decoder."), _smp_decoder_check)
 """smp ``Unet`` with ``decoder_channels`` equal to ours (ResNet-18/34: (256, 128, 64, 64, 32);
 ResNet-50: (1024, 512, 256, 64, 32)), batch norm, no attention and
@@ -179,7 +185,9 @@ LAYOUTS: dict[str, Layout] = {L.name: L for L in (
     Layout("nnunet", "nnU-Net network of dynamic-network-architectures (encoder.*; its decoder shares those modules)",
            _prefixed("encoder."), _under("encoder."), ("nnunet",), "dynamic_network_architectures",
            "the file's encoder was built from one nnU-Net plans configuration: build the network from the same plans "
-           "and configuration (the manifest's encoder spec holds its architecture entry)"),
+           "and configuration (the manifest's encoder spec holds its architecture entry)",
+           decoder=DecoderLayout(lambda ours: {k: k for k in ours if not k.startswith("decoder.encoder.")},
+                                 _nnunet_decoder_part)),
     Layout("torchvision", "torchvision ResNet (its fc layer is left as it is)", lambda k: k, _not_classifier,
            ("resnet",), "torchvision"),
     Layout("timm", "timm ResNet, including features_only models", lambda k: k, _not_classifier, ("resnet",), "timm"),

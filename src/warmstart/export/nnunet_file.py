@@ -3,10 +3,10 @@
 
 nnU-Net's loader (``load_pretrained_weights`` in nnunetv2) reads ``checkpoint["network_weights"]``
 and requires every key of its network except the segmentation layers (``.seg_layers.``), with
-equal shapes. So the file holds the whole network: the pretrained encoder, and a decoder that
-carries the initialization nnU-Net itself gives a new network (the network's own
-``initialize``), because warmstart's decoder methods train warmstart's decoder, not nnU-Net's;
-the manifest's ``nnunet`` section and ``warmstart inspect`` say so.
+equal shapes. So the file holds the whole network: the pretrained encoder, and the decoder the
+run trained (``restore`` and ``combined`` train nnU-Net's own decoder) or, where the method
+trained none, the initialization nnU-Net itself gives a new network (the network's own
+``initialize``); the manifest's ``nnunet`` section and ``warmstart inspect`` say which.
 
 The file is written with ``torch.save`` and holds only tensors and plain values: the network's
 state dict, and the warmstart manifest as a JSON string (with the same ``tensors`` sha256 and
@@ -68,7 +68,14 @@ def export_for_nnunet(run: str | os.PathLike[str], out: str | os.PathLike[str], 
 
     from ..encoders.nnunet import build_network
 
-    arrays, manifest = packed_run(run, weights=weights, checkpoint=checkpoint, with_decoder=False)
+    from ..run_folder import read_networks
+
+    try:
+        trained = read_networks(Path(run))["decoder"]
+    except Exception:  # no networks.json: packed_run names the problem
+        trained = None
+    own = bool(trained) and trained.get("kind") == "nnunet"  # the run trained nnU-Net's own decoder
+    arrays, manifest = packed_run(run, weights=weights, checkpoint=checkpoint, with_decoder=own)
     spec = manifest["encoder"]["spec"]
     if spec["name"] != "nnunet":
         raise ExportError(f"{run}: export --for nnunet needs a run pretrained with the nnunet encoder (pretrain "
@@ -77,18 +84,28 @@ def export_for_nnunet(run: str | os.PathLike[str], out: str | os.PathLike[str], 
     params = spec["params"]
     torch.manual_seed(int(seed))
     net = build_network(params["architecture"], int(params["in_channels"]))
+    enc = {k: torch.from_numpy(np.array(v)) for k, v in arrays.items() if not k.startswith("decoder.")}
+    dec = {k[len("decoder."):]: torch.from_numpy(np.array(v)) for k, v in arrays.items() if k.startswith("decoder.")}
     try:
-        net.encoder.load_state_dict({k: torch.from_numpy(np.array(v)) for k, v in arrays.items()}, strict=True)
+        net.encoder.load_state_dict(enc, strict=True)
+        if own:  # every decoder key but the segmentation layers (nnU-Net keeps its own) and the shared encoder
+            missing, unexpected = net.decoder.load_state_dict(dec, strict=False)
+            left = [k for k in missing if not k.startswith(("encoder.", "seg_layers."))]
+            if left or unexpected:
+                raise RuntimeError(f"decoder keys not filled {left[:3]}, not placed {unexpected[:3]}")
     except RuntimeError as e:
-        raise ExportError(f"{run}: the trained encoder does not fit the nnU-Net network its spec describes ({e})") from e
+        raise ExportError(f"{run}: the trained network does not fit the nnU-Net network its spec describes ({e})") from e
     state = {k: v.detach().cpu().contiguous().clone() for k, v in net.state_dict().items()}
     np_state = {k: v.numpy() for k, v in state.items()}
     full = dict(manifest)
     full["nnunet"] = {
         "checkpoint_key": WEIGHTS_KEY, "network_class_name": params["architecture"]["network_class_name"],
         "configuration": params.get("configuration"), "in_channels": int(params["in_channels"]),
-        "pretrained": ["encoder"], "decoder": "not pretrained: nnU-Net's own initialization of a new network "
-                                              f"(the network's initialize, seed {int(seed)})",
+        "pretrained": ["encoder", "decoder"] if own else ["encoder"],
+        "decoder": (f"pretrained with the encoder by {manifest['training']['method']} (all but the segmentation "
+                    "layers, which nnU-Net does not load)") if own else
+                   ("not pretrained: nnU-Net's own initialization of a new network "
+                    f"(the network's initialize, seed {int(seed)})"),
         "not_loaded_by_nnunet": ".seg_layers. (the segmentation layers: nnU-Net keeps its own)",
     }
     full["tensors"] = {"count": len(np_state), "sha256": tensor_digest(np_state),

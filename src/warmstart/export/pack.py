@@ -100,15 +100,36 @@ def _trained_networks(run: Path, state: dict[str, Any], hp: dict[str, Any], ckpt
     momentum = filled(encoder(), nets["encoder"]["momentum"], "momentum encoder") if nets["encoder"]["momentum"] else None
     dec = nets["decoder"]
     dims = int(online.spec.params.get("spatial_dims", 2))
-    decoder = filled(UNetDecoder(online.spec.stages, dec["norm"], dims), dec["key_prefix"], "decoder") if dec else None
+    if dec and dec.get("kind", "unet") != "unet":  # a client network's own decoder (nnU-Net's)
+        from ..encoders.registry import own_decoder
+
+        built = own_decoder(online, int(hp["in_channels"]))
+        if built is None or built.kind != dec["kind"]:
+            raise ExportError(f"{ckpt_path}: the run trained a {dec['kind']} decoder, which encoder {s['encoder']!r} "
+                              "does not build")
+        decoder = filled(built, dec["key_prefix"], "decoder")
+    else:
+        decoder = filled(UNetDecoder(online.spec.stages, dec["norm"], dims), dec["key_prefix"], "decoder") if dec else None
     return online, momentum, decoder
 
 
 def _decoder_section(dec: Any) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
-    """A decoder's tensors as ``decoder.*`` and the manifest's decoder section."""
-    arrays = {f"decoder.{k}": v for k, v in encoder_arrays(dec).items()}
-    section = {"kind": "unet", "norm": dec.norm, "out_channels": int(dec.out_channels), "tensors": len(arrays),
-               "parameters": int(sum(p.numel() for p in dec.parameters())), "key_prefix": "decoder."}
+    """A decoder's tensors as ``decoder.*`` and the manifest's decoder section.
+
+    warmstart's U-Net decoder is written whole. A client network's own decoder (``kind``
+    ``nnunet``) is written under that network's own ``decoder.*`` keys, without the encoder it
+    refers to (already in the file) and without its output layers (``seg_layers``: they restored
+    patches, and a segmentation network has its own)."""
+    kind = getattr(dec, "kind", "unet")
+    if kind == "unet":
+        arrays = {f"decoder.{k}": v for k, v in encoder_arrays(dec).items()}
+        params = int(sum(p.numel() for p in dec.parameters()))
+    else:
+        arrays = {f"decoder.{k}": v for k, v in encoder_arrays(dec.decoder).items()
+                  if not k.startswith("encoder.") and not k.startswith("seg_layers.")}
+        params = int(sum(v.size for k, v in arrays.items() if not k.endswith("num_batches_tracked")))
+    section = {"kind": kind, "norm": getattr(dec, "norm", None), "out_channels": int(dec.out_channels),
+               "tensors": len(arrays), "parameters": params, "key_prefix": "decoder."}
     return arrays, section
 
 

@@ -110,7 +110,8 @@ class Method(nn.Module):
         -------
         dict
             ``{"encoder": {"online": KEY_PREFIX, "momentum": KEY_PREFIX or None},
-            "decoder": None or {"kind": "unet", "norm": str, "key_prefix": KEY_PREFIX}}``; every key
+            "decoder": None or {"kind": "unet" or "nnunet", "norm": str or None, "key_prefix": KEY_PREFIX}}``
+            (``nnunet``: the client network's own decoder, see ``encoders.own_decoder``); every key
             prefix ends with a dot and starts with ``prefix`` (``"method."`` in a checkpoint).
         """
         names = {id(m): name for name, m in self.named_modules()}
@@ -119,7 +120,8 @@ class Method(nn.Module):
         return {
             "encoder": {"online": f"{prefix}{names[id(online)]}.",
                         "momentum": None if momentum is online else f"{prefix}{names[id(momentum)]}."},
-            "decoder": None if decoder is None else {"kind": "unet", "norm": decoder.norm,
+            "decoder": None if decoder is None else {"kind": getattr(decoder, "kind", "unet"),
+                                                     "norm": getattr(decoder, "norm", None),
                                                      "key_prefix": f"{prefix}{names[id(decoder)]}."},
         }
 

@@ -1,7 +1,8 @@
 """Restoration pretraining of a whole U-Net: restore the original patch from a corrupted one.
 
-Encoder and decoder both learn (the decoder is exported with ``export --with-decoder``); the
-corruptions are :mod:`warmstart.pretrain.corrupt`'s. The loss is the mean squared error between
+Encoder and decoder both learn (the decoder is exported with ``export --with-decoder``); an
+encoder that comes from a client's whole network (``nnunet``) trains that network's own decoder,
+whose output layer restores the patch. The corruptions are :mod:`warmstart.pretrain.corrupt`'s. The loss is the mean squared error between
 the restoration and the original, in standardized units.
 
 References
@@ -15,6 +16,7 @@ import torch
 import torch.nn.functional as F
 from torch import nn
 
+from ...encoders.registry import own_decoder
 from ...encoders.unet import conv_type
 from ...unet import UNetDecoder
 from ..corrupt import CorruptionSettings, corrupt
@@ -38,8 +40,13 @@ class Restore(Method):
                                              outpaint_share, boxes, noise_sigma)
         self.decoder_norm = decoder_norm
         dims = int(encoder.spec.params.get("spatial_dims", 2))
-        self.decoder = UNetDecoder(encoder.spec.stages, decoder_norm, dims)
-        self.restore_head = conv_type(dims)(self.decoder.out_channels, int(encoder.spec.params.get("in_channels", 1)), 1)
+        channels = int(encoder.spec.params.get("in_channels", 1))
+        own = own_decoder(encoder, channels)  # a client network's own decoder (nnU-Net), where it has one
+        if own is not None:
+            self.decoder, self.restore_head = own, nn.Identity()
+        else:
+            self.decoder = UNetDecoder(encoder.spec.stages, decoder_norm, dims)
+            self.restore_head = conv_type(dims)(self.decoder.out_channels, channels, 1)
 
     def restoration_loss(self, original: torch.Tensor, g: torch.Generator) -> tuple[torch.Tensor, torch.Tensor]:
         """(loss, pooled features of the corrupted input) for one batch of original patches."""
