@@ -215,3 +215,26 @@ def test_a_missing_client_library_is_named_with_its_pip_line(run3d, monkeypatch)
     monkeypatch.setattr(importlib.metadata, "version", version)
     with pytest.raises(ExportError, match="pip install dynamic-network-architectures"):
         ws.load_encoder(run3d / "enc.safetensors")
+
+
+@pytest.mark.parametrize("configuration", ["2d", "3d_fullres"])
+def test_masked_modelling_keeps_hidden_blocks_hidden_in_nnunets_encoder_and_trains_its_decoder(configuration):
+    from warmstart.encoders.nnunet import NNUNetDecoder
+    from warmstart.pretrain.methods import build_method
+
+    enc = build_encoder("nnunet", architecture=architecture_from_plans(PLANS, configuration))
+    m = build_method("masked", enc)
+    assert isinstance(m.decoder, NNUNetDecoder)
+    dims = 3 if configuration.startswith("3d") else 2
+    x = torch.randn((2, 1) + (16,) * dims, generator=torch.Generator().manual_seed(0))
+    loss, parts = m.masked_loss(x, torch.Generator().manual_seed(1))
+    hidden = parts["hidden"]
+    for f in parts["features"]:  # each stage map is zero wherever its cell is hidden, and not zero elsewhere
+        h = torch.nn.functional.interpolate(hidden, size=tuple(f.shape[2:]), mode="nearest")
+        assert float((f.detach() * h).abs().max()) == 0.0 and float((f.detach() * (1 - h)).abs().max()) > 0.0
+    x2 = torch.where(hidden.bool(), torch.randn(x.shape) * 10, x)  # hidden voxels carry no information
+    _, parts2 = m.masked_loss(x2, torch.Generator().manual_seed(1))
+    for a, b in zip(parts["features"], parts2["features"]):
+        torch.testing.assert_close(a, b, rtol=0, atol=0)
+    loss.backward()  # nnU-Net's decoder learns
+    assert m.decoder.decoder.stages[0].convs[0].conv.weight.grad is not None

@@ -8,6 +8,8 @@ computed from hidden voxels (the dense stand-in for sparse convolutions). Before
 hidden cells of every stage map are filled with a learned per-stage mask token; the U-Net decoder
 and a 1x1 head then reconstruct the patch, and the loss is the mean squared error over the hidden
 voxels only. Encoder and decoder are exported (``export --with-decoder``); the tokens are not.
+An nnU-Net encoder (``nnunet``) is masked the same way and trains nnU-Net's own decoder, whose
+last segmentation layer takes the place of the head.
 
 Batch-norm statistics are computed over visible and hidden positions alike (a sparse network
 would use visible ones only): the one approximation of this dense form.
@@ -28,6 +30,7 @@ import torch
 import torch.nn.functional as F
 from torch import nn
 
+from ...encoders.registry import own_decoder
 from ...encoders.unet import conv_type
 from ...unet import UNetDecoder
 from .base import Method, Views, register_method
@@ -61,14 +64,20 @@ class MaskedModelling(Method):
         if not 0.0 < mask_ratio < 1.0:
             raise ValueError(f"mask_ratio must be in (0, 1), got {mask_ratio}")
         acts = [m for m in encoder.modules() if isinstance(m, (nn.ReLU, nn.LeakyReLU))]
-        if not acts or not hasattr(encoder, "levels"):
-            raise ValueError("masked modelling needs the U-Net encoder (unet): its stages are masked after every activation")
+        if not acts or not (hasattr(encoder, "levels") or encoder.spec.name == "nnunet"):
+            raise ValueError("masked modelling needs the U-Net encoder (unet) or an nnU-Net network's (nnunet): their "
+                             "stages are masked after every activation")
         self.mask_ratio = float(mask_ratio)
         self.dims = int(encoder.spec.params.get("spatial_dims", 2))
         self.block = int(encoder.spec.stages[-1].stride)
         self.decoder_norm = decoder_norm
-        self.decoder = UNetDecoder(encoder.spec.stages, decoder_norm, self.dims)
-        self.head = conv_type(self.dims)(self.decoder.out_channels, int(encoder.spec.params.get("in_channels", 1)), 1)
+        channels = int(encoder.spec.params.get("in_channels", 1))
+        own = own_decoder(encoder, channels)  # nnU-Net's own decoder for its encoder
+        if own is not None:
+            self.decoder, self.head = own, nn.Identity()
+        else:
+            self.decoder = UNetDecoder(encoder.spec.stages, decoder_norm, self.dims)
+            self.head = conv_type(self.dims)(self.decoder.out_channels, channels, 1)
         self.tokens = nn.ParameterList([nn.Parameter(torch.zeros(s.channels)) for s in encoder.spec.stages])
         self._visible: torch.Tensor | None = None  # (B, 1, grid...) while a masked forward runs
         for act in acts:
