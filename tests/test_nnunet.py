@@ -72,13 +72,13 @@ def test_plans_configurations_resolve_with_inheritance_and_clear_refusals(plans)
     a = architecture_from_plans(plans, "3d_big_batch")  # inherits the parent's architecture
     assert a == architecture_from_plans(plans, "3d_fullres")
     assert architecture_from_plans(plans, "3d_fullres_wide")["arch_kwargs"]["features_per_stage"] == [8, 16, 32, 64]
-    with pytest.raises(ValueError, match=r"no configuration '3d_lowres'; it defines 2d, 3d_big_batch"):
+    with pytest.raises(ValueError, match=r"no configuration '3d_lowres'; it defines 2d, 3d_big_batch, 3d_fullres"):
         architecture_from_plans(plans, "3d_lowres")
     with pytest.raises(ValueError, match="no 'architecture' entry"):
         architecture_from_plans({"configurations": {"2d": {"UNet_class_name": "PlainConvUNet"}}}, "2d")
 
 
-@pytest.mark.parametrize("configuration", ["2d", "3d_fullres"])
+@pytest.mark.parametrize("configuration", ["2d", "3d_fullres", "3d_resenc"])
 def test_the_encoder_is_nnunets_own_module_with_its_keys(plans, configuration):
     enc = build_encoder("nnunet", in_channels=1, plans=str(plans), configuration=configuration)
     theirs = _nnunet_network(configuration).encoder

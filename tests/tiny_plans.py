@@ -22,6 +22,14 @@ def _arch(dims: int, features, strides, conv_per_stage=2) -> dict:
     }
 
 
+def _resenc(dims: int, features, strides) -> dict:
+    """The residual-encoder network of nnU-Net's ResEnc presets (n_blocks_per_stage for the encoder)."""
+    a = _arch(dims, features, strides)
+    a["network_class_name"] = "dynamic_network_architectures.architectures.unet.ResidualEncoderUNet"
+    a["arch_kwargs"]["n_blocks_per_stage"] = a["arch_kwargs"].pop("n_conv_per_stage")
+    return a
+
+
 ISO3 = [[1, 1, 1], [2, 2, 2], [2, 2, 2], [2, 2, 2]]
 PLANS = {
     "dataset_name": "Dataset001_Filters", "plans_name": "nnUNetPlans",
@@ -32,6 +40,7 @@ PLANS = {
                        "architecture": _arch(3, (4, 8, 16, 32), ISO3)},
         "3d_fullres_wide": {"inherits_from": "3d_fullres", "architecture": _arch(3, (8, 16, 32, 64), ISO3)},
         "3d_big_batch": {"inherits_from": "3d_fullres", "batch_size": 4},
+        "3d_resenc": {"inherits_from": "3d_fullres", "architecture": _resenc(3, (4, 8, 16, 32), ISO3)},
         "3d_thick_slices": {"architecture": _arch(3, (4, 8, 16, 32), [[1, 1, 1], [1, 2, 2], [2, 2, 2], [2, 2, 2]])},
     },
 }
