@@ -550,6 +550,11 @@ def main(argv: Sequence[str] | None = None) -> int:
     for name in ("pytorch_lightning.utilities.rank_zero", "lightning_fabric.utilities.rank_zero",
                  "lightning.pytorch.utilities.rank_zero"):
         logging.getLogger(name).setLevel(logging.WARNING)
+    # timm (imported by lightly and by dynamic-network-architectures, which pins timm < 1.0.23)
+    # warns about a torch API it uses on import: a library's note to its own developers.
+    import warnings
+
+    warnings.filterwarnings("ignore", message=r".*torch\.jit\.interface.*deprecated", category=FutureWarning)
 
     handlers = {"scan": cmd_scan, "demo": cmd_demo, "pretrain": cmd_pretrain, "export": cmd_export, "bench": cmd_bench,
                 "inspect": cmd_inspect, ("corpus", "build"): cmd_corpus_build, ("corpus", "show"): cmd_corpus_show,

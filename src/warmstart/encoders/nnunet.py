@@ -23,6 +23,7 @@ import copy
 import json
 import os
 import pydoc
+import warnings
 from pathlib import Path
 from typing import Any, Mapping
 
@@ -114,7 +115,9 @@ def build_network(architecture: Mapping[str, Any], in_channels: int = 1, num_cla
             if found is None:
                 raise ValueError(f"nnunet architecture: {key} = {kwargs[key]!r} cannot be imported")
             kwargs[key] = found
-    cls = pydoc.locate(architecture["network_class_name"])
+    with warnings.catch_warnings():  # importing the library imports timm, which uses a deprecated torch.jit API
+        warnings.filterwarnings("ignore", message=".*torch.jit.interface.*deprecated", category=FutureWarning)
+        cls = pydoc.locate(architecture["network_class_name"])
     if cls is None:
         raise ValueError(f"nnunet architecture: network class {architecture['network_class_name']!r} cannot be "
                          f"imported (is dynamic-network-architectures up to date? {PIP_LINE})")
