@@ -72,7 +72,7 @@ def test_plans_configurations_resolve_with_inheritance_and_clear_refusals(plans)
     a = architecture_from_plans(plans, "3d_big_batch")  # inherits the parent's architecture
     assert a == architecture_from_plans(plans, "3d_fullres")
     assert architecture_from_plans(plans, "3d_fullres_wide")["arch_kwargs"]["features_per_stage"] == [8, 16, 32, 64]
-    with pytest.raises(ValueError, match=r"no configuration '3d_lowres'; it defines 2d, 3d_big_batch, 3d_fullres"):
+    with pytest.raises(ValueError, match=r"no configuration '3d_lowres'; it defines 2d, 3d_big_batch, 3d_deeper"):
         architecture_from_plans(plans, "3d_lowres")
     with pytest.raises(ValueError, match="no 'architecture' entry"):
         architecture_from_plans({"configurations": {"2d": {"UNet_class_name": "PlainConvUNet"}}}, "2d")
@@ -151,6 +151,9 @@ def test_warm_start_into_nnunet_networks_and_refusals_naming_the_first_mismatch(
         ws.warm_start(_nnunet_network("3d_fullres_wide"), file)
     with pytest.raises(WeightsMismatchError, match="holds a 3-D encoder .* is a 2-D network"):
         ws.warm_start(_nnunet_network("2d"), file)
+    with pytest.raises(WeightsMismatchError, match=r"encoder keys of the network with nothing in the file: "
+                                                   r"encoder\.stages\.4\.0\.convs\.0\.conv\.weight"):
+        ws.warm_start(_nnunet_network("3d_deeper"), file)  # one stage more
     with pytest.raises(WeightsMismatchError, match="the file holds a nnunet encoder"):  # a layout for other encoders
         ws.warm_start(net, file, layout="smp")
 

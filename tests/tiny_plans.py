@@ -40,6 +40,7 @@ PLANS = {
                        "architecture": _arch(3, (4, 8, 16, 32), ISO3)},
         "3d_fullres_wide": {"inherits_from": "3d_fullres", "architecture": _arch(3, (8, 16, 32, 64), ISO3)},
         "3d_big_batch": {"inherits_from": "3d_fullres", "batch_size": 4},
+        "3d_deeper": {"inherits_from": "3d_fullres", "architecture": _arch(3, (4, 8, 16, 32, 64), ISO3 + [[2, 2, 2]])},
         "3d_resenc": {"inherits_from": "3d_fullres", "architecture": _resenc(3, (4, 8, 16, 32), ISO3)},
         "3d_thick_slices": {"architecture": _arch(3, (4, 8, 16, 32), [[1, 1, 1], [1, 2, 2], [2, 2, 2], [2, 2, 2]])},
     },
