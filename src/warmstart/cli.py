@@ -143,11 +143,11 @@ def build_parser() -> argparse.ArgumentParser:
                      help="momentum (EMA) copy of MoCo / BYOL, or the online one; auto: momentum where there is one")
     exp.add_argument("--checkpoint", metavar="CKPT", help="a checkpoint other than checkpoints/last.ckpt")
     exp.add_argument("--with-decoder", action="store_true",
-                     help="also write the U-Net decoder the method trained (methods restore and combined)")
+                     help="also write the decoder the method trained (methods restore, combined and masked)")
     exp.add_argument("--for", dest="target", choices=["warmstart", "nnunet"], default="warmstart",
                      help="nnunet: write the checkpoint nnU-Net's -pretrained_weights option loads (a run of the "
-                          "nnunet encoder: the whole network, the decoder as nnU-Net initializes it); default: the "
-                          "safetensors encoder file")
+                          "nnunet encoder: the whole network; its decoder as trained by restore, combined or masked, "
+                          "else as nnU-Net initializes a new one); default: the safetensors encoder file")
     exp.add_argument("--seed", type=int, default=0, help="with --for nnunet: seed of the decoder's initialization")
     exp.add_argument("--json", action="store_true")
 

@@ -57,8 +57,8 @@ class DynUNetEncoder(nn.Module):
 
     def __init__(self, in_channels: int = 1, spatial_dims: int = 2, filters: Sequence[int] = (32, 64, 128, 256),
                  strides: Sequence[Any] = (1, 2, 2, 2), kernel_size: Sequence[Any] | None = None,
-                 norm_name: Any = ("INSTANCE", {"affine": True}), act_name: Any = ("leakyrelu", {"inplace": True, "negative_slope": 0.01}),
-                 res_block: bool = False, library: Mapping[str, Any] | None = None) -> None:
+                 norm_name: Any = ("INSTANCE", {"affine": True}),
+                 act_name: Any = ("leakyrelu", {"inplace": True, "negative_slope": 0.01}), res_block: bool = False, library: Mapping[str, Any] | None = None) -> None:
         super().__init__()
         try:
             import monai

@@ -67,7 +67,6 @@ def export_for_nnunet(run: str | os.PathLike[str], out: str | os.PathLike[str], 
     import torch
 
     from ..encoders.nnunet import build_network
-
     from ..run_folder import read_networks
 
     try:
