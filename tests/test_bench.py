@@ -198,7 +198,14 @@ def test_bench_end_to_end_report_agrees_with_runs_and_resumes(labelled, tmp_path
     assert helpful["leakage"] == ["labelled_01"] and "tested on data seen in pretraining" in md
     assert "significant at 95 %" in md and re.search(r"random init \(unet\)", md)
     html = (tmp_path / "out" / "bench.html").read_text()
-    assert html.count("data:image/png;base64,") == 3
+    assert html.count("data:image/png;base64,") == 4  # per-replicate Dice, learning curve, curves, predictions
+    # Labels saved: one headline per warm start at 1 tile (4 is the largest size), first in the report.
+    from warmstart.bench.labels_saved import labels_saved
+
+    ls = saved["labels_saved"]
+    assert [(r["contender"], r["size"]) for r in ls] == [("helpful", 1)]
+    assert md.splitlines()[2] == f"**{ls[0]['sentence']}**"
+    assert labels_saved(saved["runs"], "helpful", "random", 1, [1, 4])["tiles"] == ls[0]["tiles"]
     # Rerun: every finished run is reused, nothing is retrained, the report is identical.
     stamp = {p.name: p.stat().st_mtime_ns for p in (tmp_path / "out" / "runs").glob("*.json")}
     again = run_bench(labelled, [enc], tmp_path / "out", s, progress=False)

@@ -50,7 +50,8 @@ def verdicts(result: dict[str, Any]) -> list[str]:
 def markdown(result: dict[str, Any]) -> str:
     s = result["settings"]
     labels = {c["id"]: c["label"] for c in result["contenders"]}
-    lines = ["# Few-shot segmentation benchmark", "",
+    saved = [r["sentence"] for r in result.get("labels_saved", [])]
+    lines = ["# Few-shot segmentation benchmark", ""] + ([f"**{t}**" for t in saved] + [""] if saved else []) + [
              f"{len(result['contenders'])} contenders, training sets of {', '.join(map(str, s['sizes']))} tile(s) of "
              f"{s['tile_size']} px, {s['replicates']} replicates each, {s['epochs']} epochs x {s['steps_per_epoch']} steps of "
              f"{s['batch_size']} patches of {s['patch_size']} px; {result['classes']} classes; test: "
@@ -121,6 +122,24 @@ def _plots(result: dict[str, Any], pairs: Sequence[Any], out: Path) -> list[tupl
         ax.set_title(f"{n} tile(s)")
     axes[0][0].set_ylabel("test Dice (foreground mean)")
     figs.append(("Final test Dice per replicate", _png(fig)))
+    fig, ax = plt.subplots(figsize=(4.5, 3.2))
+    for c in cons:  # the learning curve: final Dice against labelled tiles (log axis), 95 % band
+        ci = [mean_ci([r["test_dice"] for r in result["runs"] if r["size"] == n and r["contender"] == c["id"]])
+              for n in sizes]
+        have = [(n, x) for n, x in zip(sizes, ci) if x["mean"] is not None]
+        if not have:
+            continue
+        ax.plot([n for n, _ in have], [x["mean"] for _, x in have], marker="o", label=c["id"])
+        band = [(n, x) for n, x in have if x["low"] is not None]
+        if band:  # Dice is bounded: the band is drawn inside [0, 1]
+            ax.fill_between([n for n, _ in band], [max(0.0, x["low"]) for _, x in band],
+                            [min(1.0, x["high"]) for _, x in band], alpha=0.2)
+    ax.set_xscale("log", base=2)
+    ax.set_xticks(sizes, [str(n) for n in sizes])
+    ax.set_xlabel("labelled tiles")
+    ax.set_ylabel("final test Dice")
+    ax.legend(fontsize=7)
+    figs.append(("Learning curve: final test Dice against labelled tiles (mean, 95 % band)", _png(fig)))
     fig, axes = plt.subplots(1, len(sizes), figsize=(3.2 * len(sizes), 3.0), squeeze=False, sharey=True)
     for ax, n in zip(axes[0], sizes):
         for c in cons:

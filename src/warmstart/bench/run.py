@@ -16,6 +16,7 @@ from ..base.lock import locks_output
 from ..errors import WarmstartError
 from .data import load_pairs, make_split, n_classes
 from .settings import BenchSettings
+from .labels_saved import headline
 from .stats import epochs_to_reach, mean_ci, paired_difference
 
 __all__ = ["Contender", "run_bench", "summarize"]
@@ -227,6 +228,7 @@ def run_bench(labels: str | os.PathLike[str], encoders: Sequence[str | os.PathLi
         "split": split.to_dict(), "contenders": [c.to_dict() for c in contenders], "runs": runs,
         "summary": summarize(runs, contenders, s),
     }
+    result["labels_saved"] = headline(runs, result["contenders"], list(s.sizes))
     result["report"] = write_report(out, result, pairs)
     return result
 
