@@ -205,6 +205,9 @@ def test_bench_end_to_end_report_agrees_with_runs_and_resumes(labelled, tmp_path
     ls = saved["labels_saved"]
     assert [(r["contender"], r["size"]) for r in ls] == [("helpful", 1)]
     assert md.splitlines()[2] == f"**{ls[0]['sentence']}**"
+    rec = saved["recommendation"]  # two contenders: one pair per size, Holm over both
+    assert rec["sentence"] and md.splitlines()[3] == f"**{rec['sentence']}**" and len(rec["pairs"]) == 2
+    assert "| p (Holm) |" in md
     assert labels_saved(saved["runs"], "helpful", "random", 1, [1, 4])["tiles"] == ls[0]["tiles"]
     # Rerun: every finished run is reused, nothing is retrained, the report is identical.
     stamp = {p.name: p.stat().st_mtime_ns for p in (tmp_path / "out" / "runs").glob("*.json")}

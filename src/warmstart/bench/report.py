@@ -51,6 +51,9 @@ def markdown(result: dict[str, Any]) -> str:
     s = result["settings"]
     labels = {c["id"]: c["label"] for c in result["contenders"]}
     saved = [r["sentence"] for r in result.get("labels_saved", [])]
+    rec = result.get("recommendation") or {}
+    if rec.get("sentence"):
+        saved.append(rec["sentence"])
     lines = ["# Few-shot segmentation benchmark", ""] + ([f"**{t}**" for t in saved] + [""] if saved else []) + [
              f"{len(result['contenders'])} contenders, training sets of {', '.join(map(str, s['sizes']))} tile(s) of "
              f"{s['tile_size']} px, {s['replicates']} replicates each, {s['epochs']} epochs x {s['steps_per_epoch']} steps of "
@@ -82,6 +85,15 @@ def markdown(result: dict[str, Any]) -> str:
               f"{s['dice_threshold']:g}: the first epoch whose validation Dice reaches {s['dice_threshold']:g}, averaged "
               "over the replicates that reached it; (reached) counts those replicates out of all. "
               "`*`: the 95 % interval of the paired difference excludes zero.", "", "## In words", ""] + [f"- {v}" for v in verdicts(result)] + [""]
+    if rec.get("pairs"):
+        lines += ["## Every pair of contenders", "",
+                  "Final test Dice, paired by replicate: paired t test, p values adjusted for the whole table by "
+                  "Holm's step-down method.", "",
+                  "| tiles | contender | vs | difference | pairs | p | p (Holm) |", "|---|---|---|---|---|---|---|"]
+        for r in rec["pairs"]:
+            lines.append(f"| {r['size']} | {labels[r['a']]} | {labels[r['b']]} | {_num(r['difference'])} | {r['pairs']} | "
+                         f"{_num(r['p'])} | {_num(r['p_holm'])} |")
+        lines.append("")
     lines += ["## Contenders", ""]
     for c in result["contenders"]:
         lines.append(f"- **{c['label']}** (`{c['id']}`): {c['spec']['name']} {c['spec']['params']}; input: {c['normalization']}")

@@ -17,6 +17,7 @@ from ..errors import WarmstartError
 from .data import load_pairs, make_split, n_classes
 from .settings import BenchSettings
 from .labels_saved import headline
+from .ranking import recommendation
 from .stats import epochs_to_reach, mean_ci, paired_difference
 
 __all__ = ["Contender", "run_bench", "summarize"]
@@ -229,6 +230,7 @@ def run_bench(labels: str | os.PathLike[str], encoders: Sequence[str | os.PathLi
         "summary": summarize(runs, contenders, s),
     }
     result["labels_saved"] = headline(runs, result["contenders"], list(s.sizes))
+    result["recommendation"] = recommendation(runs, result["contenders"], list(s.sizes))
     result["report"] = write_report(out, result, pairs)
     return result
 
