@@ -246,3 +246,40 @@ def test_frozen_encoder_and_encoder_lr_factor_keep_the_encoder_weights(labelled,
     after = dict(net.named_parameters())
     assert all(torch.equal(before[k], after[k]) for k in before if k.startswith("encoder."))
     assert any(not torch.equal(before[k], after[k]) for k in before if k.startswith("decoder."))
+
+
+@pytest.fixture(scope="module")
+def report(labelled, tmp_path_factory):
+    """One small bench with a warm contender: its report folder."""
+    from warmstart.bench.run import run_bench
+
+    tmp = tmp_path_factory.mktemp("report")
+    enc = _helpful_encoder(labelled, tmp)
+    s = BenchSettings(sizes=[1, 4], replicates=3, tile_size=48, patch_size=32, epochs=2, steps_per_epoch=3, batch_size=4,
+                      val_slices=3, test_slices=4, early_steps=2, lr=2e-3, threads=2)
+    run_bench(labelled, [enc], tmp / "out", s, progress=False)
+    return tmp / "out"
+
+
+def test_the_html_report_in_a_real_browser(report, tmp_path):
+    # Headless Chromium (Debian's package) loads the page: no console errors, a screenshot that is
+    # not blank, and every table and figure of the report in the DOM.
+    from PIL import Image
+
+    from browser import render
+
+    saved = json.loads((report / "bench.json").read_text())
+    dom, shot, log = render(report / "bench.html", tmp_path)
+    assert "<h1>Few-shot segmentation benchmark</h1>" in dom
+    # the page has no scripts: any console message (a failed resource, a script error) is a fault
+    assert ":CONSOLE(" not in log and "Uncaught" not in log and "ERR_FILE_NOT_FOUND" not in log, log[-2000:]
+    # headline sentences first, then one table per size, per class, pairs, settings and split
+    first = dom.index("class=\"headline\"")
+    assert first < dom.index("<table") and saved["labels_saved"][0]["sentence"].split(",")[0] in dom
+    assert dom.count("<table") == len(saved["summary"]) + 4
+    for title in ("Learning curve", "Final test Dice per replicate", "Validation Dice per epoch", "Test predictions"):
+        assert title in dom
+    assert dom.count("data:image/png;base64,") == 4 and "<script" not in dom.lower()
+    assert "class 0 (background)" in dom and "class 1" in dom  # the legend names every class
+    px = np.asarray(Image.open(shot).convert("L"), dtype=float)
+    assert px.std() > 10 and (px < 128).mean() > 0.005  # text and figures, not a blank page

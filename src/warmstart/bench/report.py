@@ -1,9 +1,9 @@
 """The benchmark report: ``bench.json`` (every run, every epoch), ``bench.md`` (tables and the
-verdict in words) and ``bench.html`` (the same with the plots embedded; one self-contained file)."""
+verdict in words) and ``bench.html`` (a page with the same figures, tables and plots; one
+self-contained file, see :mod:`.html_page`)."""
 from __future__ import annotations
 
 import base64
-import html
 import io
 from pathlib import Path
 from typing import Any, Sequence
@@ -47,6 +47,18 @@ def verdicts(result: dict[str, Any]) -> list[str]:
     return out
 
 
+def intro(result: dict[str, Any]) -> str:
+    """The paragraph that describes the set-up (the same in bench.md and bench.html)."""
+    s = result["settings"]
+    return (f"{len(result['contenders'])} contenders, training sets of {', '.join(map(str, s['sizes']))} tile(s) of "
+            f"{s['tile_size']} px, {s['replicates']} replicates each, {s['epochs']} epochs x {s['steps_per_epoch']} steps of "
+            f"{s['batch_size']} patches of {s['patch_size']} px; {result['classes']} classes; test: "
+            f"{len(result['split']['test'])} whole slices, validation: {len(result['split']['val'])}; device "
+            f"{result['device']}. Means over replicates with 95 % intervals (Dice and curve area: Student t on the logit "
+            "scale, so they stay inside [0, 1]; other figures: Student t); differences are paired by replicate (same "
+            "patches, same decoder initialization) and keep signed Student t intervals.")
+
+
 def markdown(result: dict[str, Any]) -> str:
     s = result["settings"]
     labels = {c["id"]: c["label"] for c in result["contenders"]}
@@ -55,12 +67,7 @@ def markdown(result: dict[str, Any]) -> str:
     if rec.get("sentence"):
         saved.append(rec["sentence"])
     lines = ["# Few-shot segmentation benchmark", ""] + ([f"**{t}**" for t in saved] + [""] if saved else []) + [
-             f"{len(result['contenders'])} contenders, training sets of {', '.join(map(str, s['sizes']))} tile(s) of "
-             f"{s['tile_size']} px, {s['replicates']} replicates each, {s['epochs']} epochs x {s['steps_per_epoch']} steps of "
-             f"{s['batch_size']} patches of {s['patch_size']} px; {result['classes']} classes; test: "
-             f"{len(result['split']['test'])} whole slices, validation: {len(result['split']['val'])}; device "
-             f"{result['device']}. Means with 95 % Student t intervals over replicates; differences are paired by replicate "
-             "(same patches, same decoder initialization).", ""]
+             intro(result), ""]
     for n, rows in result["summary"].items():
         lines += [f"## {n} training tile(s)", "",
                   "| contender | final test Dice | early Dice | curve area | epochs to "
@@ -119,7 +126,7 @@ def _plots(result: dict[str, Any], pairs: Sequence[Any], out: Path) -> list[tupl
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
-    from .stats import mean_ci
+    from .stats import bounded_ci
 
     cons = result["contenders"]
     sizes = result["settings"]["sizes"]
@@ -136,7 +143,7 @@ def _plots(result: dict[str, Any], pairs: Sequence[Any], out: Path) -> list[tupl
     figs.append(("Final test Dice per replicate", _png(fig)))
     fig, ax = plt.subplots(figsize=(4.5, 3.2))
     for c in cons:  # the learning curve: final Dice against labelled tiles (log axis), 95 % band
-        ci = [mean_ci([r["test_dice"] for r in result["runs"] if r["size"] == n and r["contender"] == c["id"]])
+        ci = [bounded_ci([r["test_dice"] for r in result["runs"] if r["size"] == n and r["contender"] == c["id"]])
               for n in sizes]
         have = [(n, x) for n, x in zip(sizes, ci) if x["mean"] is not None]
         if not have:
@@ -159,11 +166,11 @@ def _plots(result: dict[str, Any], pairs: Sequence[Any], out: Path) -> list[tupl
             if not len(curves):
                 continue
             ep = np.arange(1, curves.shape[1] + 1)
-            ci = [mean_ci(curves[:, k]) for k in range(curves.shape[1])]
+            ci = [bounded_ci(curves[:, k]) for k in range(curves.shape[1])]
             m = np.array([x["mean"] for x in ci])
             ax.plot(ep, m, label=c["id"])
-            if curves.shape[0] > 1:
-                ax.fill_between(ep, [x["low"] for x in ci], [x["high"] for x in ci], alpha=0.2)
+            if curves.shape[0] > 1:  # Dice is bounded: the band is drawn inside [0, 1]
+                ax.fill_between(ep, [max(0.0, x["low"]) for x in ci], [min(1.0, x["high"]) for x in ci], alpha=0.2)
         ax.set_title(f"{n} tile(s)")
         ax.set_xlabel("epoch")
     axes[0][0].set_ylabel("validation Dice")
@@ -174,13 +181,20 @@ def _plots(result: dict[str, Any], pairs: Sequence[Any], out: Path) -> list[tupl
     preds = {k: np.load(v) for k, v in preds.items() if v.exists()}
     test = result["split"]["test"][:3]
     if preds and test:
+        from matplotlib.colors import ListedColormap
+
+        from .html_page import CLASS_COLOURS
+
+        k = int(result["classes"])
+        palette = [CLASS_COLOURS[j % len(CLASS_COLOURS)] for j in range(k)]
+        classes = dict(cmap=ListedColormap(palette), vmin=-0.5, vmax=k - 0.5, interpolation="nearest")
         cols = 2 + len(preds)
         fig, axes = plt.subplots(len(test), cols, figsize=(2.2 * cols, 2.2 * len(test)), squeeze=False)
         for row, (i, z) in enumerate(test):
             img = pairs[i].image[z].astype(float)
             lo, hi = np.percentile(img, [1, 99])
-            panels = [("image", img, dict(cmap="gray", vmin=lo, vmax=hi)), ("label", pairs[i].label[z], dict(cmap="viridis"))]
-            panels += [(k, p[f"arr_{row}"], dict(cmap="viridis")) for k, p in preds.items() if f"arr_{row}" in p]
+            panels = [("image", img, dict(cmap="gray", vmin=lo, vmax=hi)), ("label", pairs[i].label[z], classes)]
+            panels += [(k, p[f"arr_{row}"], classes) for k, p in preds.items() if f"arr_{row}" in p]
             for col, (title, a, kw) in enumerate(panels):
                 axes[row][col].imshow(a, **kw)
                 axes[row][col].set_axis_off()
@@ -196,9 +210,9 @@ def write_report(out: Path, result: dict[str, Any], pairs: Sequence[Any]) -> dic
     write_json(out / "bench.json", {**result, "report": paths})
     md = markdown(result)
     (out / "bench.md").write_text(md, encoding="utf-8", errors="backslashreplace")
-    body = "".join(f"<h2>{html.escape(t)}</h2><img src='data:image/png;base64,{b}'>" for t, b in _plots(result, pairs, out))
-    (out / "bench.html").write_text(
-        "<!doctype html><meta charset='utf-8'><title>warmstart bench</title>"
-        "<style>body{font-family:sans-serif;max-width:1100px;margin:auto}pre{white-space:pre-wrap}</style>"
-        f"<pre>{html.escape(md)}</pre>{body}")
+    from .html_page import html_page
+
+    names = [f"class {k}" + (" (background)" if k == 0 else "") for k in range(int(result["classes"]))]
+    (out / "bench.html").write_text(html_page(result, _plots(result, pairs, out), intro(result), names),
+                                    encoding="utf-8", errors="backslashreplace")
     return paths

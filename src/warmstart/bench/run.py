@@ -18,7 +18,7 @@ from .data import load_pairs, make_split, n_classes
 from .settings import BenchSettings
 from .labels_saved import headline
 from .ranking import recommendation
-from .stats import epochs_to_reach, mean_ci, paired_difference
+from .stats import bounded_ci, epochs_to_reach, mean_ci, paired_difference
 
 __all__ = ["Contender", "run_bench", "summarize"]
 
@@ -143,7 +143,7 @@ def summarize(runs: list[dict[str, Any]], contenders: list[Contender], s: BenchS
                 best_random[c.id] = float(np.max(np.mean([r["val_dice"] for r in by[c.id]], axis=0)))
         for c in contenders:
             rs = by[c.id]
-            row: dict[str, Any] = {f: mean_ci([r[f] for r in rs]) for f in FIGURES}
+            row: dict[str, Any] = {f: bounded_ci([r[f] for r in rs]) for f in FIGURES}  # all in [0, 1]
             reached = [r["epochs_to_threshold"] for r in rs if r["epochs_to_threshold"] is not None]
             row["epochs_to_threshold"] = {**mean_ci(reached), "reached": len(reached), "runs": len(rs)}
             base = c.baseline or c.id

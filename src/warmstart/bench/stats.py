@@ -2,8 +2,10 @@
 
 Dice per class is ``2 |P & G| / (|P| + |G|)`` over all voxels of a set (pooled over its slices),
 voxels of the ignore label excluded; a class absent from both prediction and truth scores 1.
-Confidence intervals are Student t intervals over replicates; paired differences are paired by
-seed (same patches, same decoder initialization) and tested with the Wilcoxon signed-rank test.
+Confidence intervals are Student t intervals over replicates; for figures bounded to [0, 1] (Dice,
+curve area) the t interval is computed on the logit scale and mapped back, so it stays inside the
+bounds (:func:`bounded_ci`). Paired differences are paired by seed (same patches, same decoder
+initialization), keep their signed t intervals and are tested with the Wilcoxon signed-rank test.
 """
 from __future__ import annotations
 
@@ -12,8 +14,13 @@ from typing import Any, Sequence
 
 import numpy as np
 
-__all__ = ["dice_counts", "dice_from_counts", "dice_per_class", "mean_ci", "paired_difference", "epochs_to_reach",
-           "curve_area"]
+__all__ = ["dice_counts", "dice_from_counts", "dice_per_class", "mean_ci", "bounded_ci", "paired_difference",
+           "epochs_to_reach", "curve_area", "LOGIT_EPS"]
+
+LOGIT_EPS = 1e-3
+"""Values are kept inside [LOGIT_EPS, 1 - LOGIT_EPS] before the logit, so a replicate at exactly 0 or
+1 (a class absent from prediction and truth scores 1) has a finite logit; the common practice of
+bounding proportions away from 0 and 1 before a logit transform (the value is our choice)."""
 
 
 def dice_counts(pred: np.ndarray, truth: np.ndarray, classes: int, ignore_label: int | None = None) -> np.ndarray:
@@ -69,6 +76,34 @@ def mean_ci(values: Sequence[float], level: float = 0.95) -> dict[str, Any]:
     sd = float(x.std(ddof=1))
     half = float(stats.t.ppf(0.5 + level / 2, n - 1)) * sd / math.sqrt(n)
     return {"n": n, "mean": mean, "sd": sd, "low": mean - half, "high": mean + half}
+
+
+def bounded_ci(values: Sequence[float], level: float = 0.95, eps: float = LOGIT_EPS) -> dict[str, Any]:
+    """Mean and a confidence interval that stays inside [0, 1]: the Student t interval of the
+    mean logit, mapped back through the logistic function.
+
+    ``mean`` and ``sd`` are those of the values themselves; ``low`` and ``high`` come from the
+    logit scale (values clipped to [eps, 1 - eps] first); ``interval`` names the method.
+
+    Examples
+    --------
+    >>> r = bounded_ci([0.2, 0.9, 0.95])
+    >>> 0 < r["low"] < r["mean"] < r["high"] < 1
+    True
+    """
+    from scipy import stats
+
+    out = mean_ci(values, level)
+    out["interval"] = "Student t on the logit scale"
+    if out["n"] < 2:
+        return out
+    x = np.clip(np.asarray([v for v in values if v is not None and np.isfinite(v)], dtype=float), eps, 1 - eps)
+    z = np.log(x / (1 - x))
+    sd = float(z.std(ddof=1))
+    centre = float(z.mean())
+    half = float(stats.t.ppf(0.5 + level / 2, z.size - 1)) * sd / math.sqrt(z.size)
+    out["low"], out["high"] = (float(1 / (1 + math.exp(-v))) for v in (centre - half, centre + half))
+    return out
 
 
 def paired_difference(a: Sequence[float], b: Sequence[float], level: float = 0.95) -> dict[str, Any]:
