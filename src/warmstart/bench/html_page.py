@@ -11,6 +11,9 @@ from __future__ import annotations
 import html
 from typing import Any, Sequence
 
+from .cells import ci as _ci
+from .cells import epochs_cell
+
 __all__ = ["html_page", "CLASS_COLOURS"]
 
 CLASS_COLOURS = ("#000000", "#e0a526", "#2a9d8f", "#c8553d", "#6d5bd0", "#8ab17d", "#3c6e9f", "#d67fbd")
@@ -33,15 +36,6 @@ def _table(head: Sequence[str], rows: Sequence[Sequence[Any]], caption: str = ""
     cap = f"<caption>{_e(caption)}</caption>" if caption else ""
     body = "".join("<tr>" + "".join(f"<td>{_e(c)}</td>" for c in r) + "</tr>" for r in rows)
     return f"<table>{cap}<tr>{''.join(f'<th>{_e(h)}</th>' for h in head)}</tr>{body}</table>"
-
-
-def _ci(r: dict[str, Any], d: int = 3) -> str:
-    if not r or r.get("mean") is None:
-        return "n/a"
-    n = f" (n = {r['n']})" if r.get("n") else ""
-    if r.get("low") is None:
-        return f"{r['mean']:.{d}f}{n}"
-    return f"{r['mean']:.{d}f} [{r['low']:.{d}f}, {r['high']:.{d}f}]{n}"
 
 
 def html_page(result: dict[str, Any], figures: Sequence[tuple[str, str]], intro: str, class_names: Sequence[str]) -> str:
@@ -77,11 +71,10 @@ def html_page(result: dict[str, Any], figures: Sequence[tuple[str, str]], intro:
                 return "" if f not in vs or vs[f]["mean"] is None else \
                     f"{_ci(vs[f])}{' *' if vs[f]['significant'] else ''}"
 
-            e = row["epochs_to_threshold"]
             body.append([labels[cid], _ci(row["test_dice"]), _ci(row["early_dice"]), _ci(row["curve_area"]),
-                         f"{_ci(e, 1)} ({e['reached']}/{e['runs']})", d("test_dice"), d("early_dice")])
+                         epochs_cell(row), d("test_dice"), d("early_dice")])
         parts.append(f"<h2>{_e(n)} training tile(s)</h2>" + _table(
-            ["contender", "final test Dice", "early Dice", "curve area", f"epochs to {s['dice_threshold']:g} (reached)",
+            ["contender", "final test Dice", "early Dice", "curve area", "epochs to 95 % of random's best (reached)",
              "test Dice vs random", "early Dice vs random"], body))
     parts.append("<p><small>Means over replicates with 95 % intervals (n: replicates): Dice and curve area on the "
                  "logit scale, inside [0, 1]; epochs: Student t. Differences are paired by replicate with signed Student "

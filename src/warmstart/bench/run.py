@@ -151,7 +151,8 @@ def summarize(runs: list[dict[str, Any]], contenders: list[Contender], s: BenchS
                 t95 = 0.95 * best_random[base]
                 e95 = [epochs_to_reach(r["val_dice"], t95) for r in rs]
                 row["epochs_to_95pct_random"] = {**mean_ci([e for e in e95 if e is not None]),
-                                                 "threshold": t95, "reached": sum(e is not None for e in e95)}
+                                                 "threshold": t95, "reached": sum(e is not None for e in e95),
+                                                 "runs": len(rs)}
             row["seconds"] = mean_ci([r["seconds"] for r in rs])
             if c.baseline:
                 ref = {r["seed"]: r for r in by[c.baseline]}
