@@ -276,7 +276,8 @@ def test_the_html_report_in_a_real_browser(report, tmp_path):
     # headline sentences first, then one table per size, per class, pairs, settings and split
     first = dom.index("class=\"headline\"")
     assert first < dom.index("<table") and saved["labels_saved"][0]["sentence"].split(",")[0] in dom
-    assert dom.count("<table") == len(saved["summary"]) + 4
+    assert dom.count("<table") == len(saved["summary"]) + 5  # sizes, per class, measurement error, pairs, settings, split
+    assert "Measurement error" in dom and "mean thickness (px) error" in dom
     for title in ("Learning curve", "Final test Dice per replicate", "Validation Dice per epoch", "Test predictions"):
         assert title in dom
     assert dom.count("data:image/png;base64,") == 4 and "<script" not in dom.lower()

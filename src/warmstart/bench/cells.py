@@ -3,7 +3,13 @@ from __future__ import annotations
 
 from typing import Any
 
-__all__ = ["ci", "epochs_cell"]
+__all__ = ["ci", "epochs_cell", "measure_table", "MEASURE_NOTE"]
+
+MEASURE_NOTE = ("What users measure, computed on every test slice from the prediction and from the label, per "
+                "class: phase fraction, specific surface (interface length per area, 1/px), mean local thickness "
+                "(px) and connected objects. Each cell: the mean absolute error over replicates [95 % t interval] "
+                "(n), and for warm starts the paired difference of that error from random init's (negative: "
+                "smaller error; *: its interval excludes zero).")
 
 
 def ci(r: dict[str, Any], d: int = 3) -> str:
@@ -22,3 +28,27 @@ def epochs_cell(row: dict[str, Any]) -> str:
     if not e:
         return "n/a"
     return f"{ci(e, 1)} ({e['reached']}/{e.get('runs', e['reached'])})"
+
+
+def measure_table(result: dict[str, Any]) -> tuple[list[str], list[list[str]]]:
+    """The measurement-error table: per size, contender and class, the mean absolute error of
+    each quantity over replicates and, for warm starts, its paired difference from random init
+    (negative: smaller error; ``*``: the interval excludes zero)."""
+    from .measures import NAMES, QUANTITIES
+
+    labels = {c["id"]: c["label"] for c in result["contenders"]}
+    head = ["tiles", "contender", "class"] + [f"{NAMES[q]} error" for q in QUANTITIES]
+    rows = []
+    for n, by in result["summary"].items():
+        for cid, row in by.items():
+            errs, vs = row.get("measure_errors") or {}, row.get("measure_errors_vs_random") or {}
+            for k in sorted({key.split("/")[0] for key in errs}, key=int):
+                cells = []
+                for q in QUANTITIES:
+                    cell = ci(errs.get(f"{k}/{q}", {}))
+                    d = vs.get(f"{k}/{q}")
+                    if d and d.get("mean") is not None:
+                        cell += f"; vs random {d['mean']:+.3f}{' *' if d['significant'] else ''}"
+                    cells.append(cell)
+                rows.append([str(n), labels[cid], str(k), *cells])
+    return head, rows

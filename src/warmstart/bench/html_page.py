@@ -12,7 +12,7 @@ import html
 from typing import Any, Sequence
 
 from .cells import ci as _ci
-from .cells import epochs_cell
+from .cells import MEASURE_NOTE, epochs_cell, measure_table
 
 __all__ = ["html_page", "CLASS_COLOURS"]
 
@@ -85,6 +85,9 @@ def html_page(result: dict[str, Any], figures: Sequence[tuple[str, str]], intro:
             continue
         parts.append(f"<h2>{_e(title)}</h2><img alt='{_e(title)}' src='data:image/png;base64,{b64}'>")
     parts.append(_per_class(result, labels, class_names))
+    head, rows = measure_table(result)
+    if rows:
+        parts.append(f"<h2>Measurement error</h2><p>{_e(MEASURE_NOTE)}</p>" + _table(head, rows))
     pred = next(((t, b) for t, b in figs.items() if t.startswith("Test predictions")), None)
     if pred:
         legend = "".join(f"<span style='background:{CLASS_COLOURS[k % len(CLASS_COLOURS)]}'></span>{_e(name)}"

@@ -12,7 +12,7 @@ import numpy as np
 
 from ..base.atomic import write_json
 from .cells import ci as _ci
-from .cells import epochs_cell
+from .cells import MEASURE_NOTE, epochs_cell, measure_table
 
 __all__ = ["write_report", "markdown", "verdicts"]
 
@@ -88,6 +88,10 @@ def markdown(result: dict[str, Any]) -> str:
               f"`bench.dice_threshold` {s['dice_threshold']:g} stays in bench.json), averaged "
               "over the replicates that reached it; (reached) counts those replicates out of all. "
               "`*`: the 95 % interval of the paired difference excludes zero.", "", "## In words", ""] + [f"- {v}" for v in verdicts(result)] + [""]
+    head, rows = measure_table(result)
+    if rows:
+        lines += ["## Measurement error", "", MEASURE_NOTE, "", "| " + " | ".join(head) + " |",
+                  "|" + "---|" * len(head)] + ["| " + " | ".join(r) + " |" for r in rows] + [""]
     if rec.get("pairs"):
         lines += ["## Every pair of contenders", "",
                   "Final test Dice, paired by replicate: paired t test, p values adjusted for the whole table by "

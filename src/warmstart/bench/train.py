@@ -11,6 +11,7 @@ import torch.nn.functional as F
 
 from ..encoders.memory import module_channels_last, to_channels_last
 from .data import Split
+from .measures import measurement_errors
 from .settings import BenchSettings
 from .stats import curve_area, dice_counts, dice_from_counts, epochs_to_reach
 
@@ -80,12 +81,17 @@ def predict_slice(model: torch.nn.Module, image: np.ndarray, device: torch.devic
 
 
 def _evaluate(model: torch.nn.Module, images: Sequence[np.ndarray], labels: Sequence[np.ndarray],
-              slices: Sequence[tuple[int, int]], classes: int, ignore: int | None, device: torch.device) -> np.ndarray:
+              slices: Sequence[tuple[int, int]], classes: int, ignore: int | None, device: torch.device,
+              predictions: list[np.ndarray] | None = None) -> np.ndarray:
+    """Dice per class pooled over ``slices``; the predicted slices are appended to ``predictions``."""
     was = model.training
     model.eval()
     counts = np.zeros((classes, 3), dtype=np.int64)
     for i, z in slices:
-        counts += dice_counts(predict_slice(model, images[i][z], device), labels[i][z], classes, ignore)
+        pred = predict_slice(model, images[i][z], device)
+        counts += dice_counts(pred, labels[i][z], classes, ignore)
+        if predictions is not None:
+            predictions.append(pred.astype(np.uint8))
     model.train(was)
     return dice_from_counts(counts)
 
@@ -115,7 +121,9 @@ def fine_tune(make_model: Callable[[], torch.nn.Module], images: Sequence[np.nda
     dict
         ``val_dice`` per epoch, ``early_dice`` (validation after ``early_steps`` steps),
         ``test_dice`` (mean foreground), ``test_dice_per_class``, ``curve_area``, ``epochs_to_threshold``,
-        ``seconds`` and optionally ``predictions``.
+        ``seconds``, ``measures`` (per class and quantity, the truth's and the prediction's value on
+        every test slice and their mean absolute and relative errors: :mod:`.measures`) and
+        optionally ``predictions``.
     """
     torch.manual_seed(seed)
     model = make_model().to(device)
@@ -157,15 +165,16 @@ def fine_tune(make_model: Callable[[], torch.nn.Module], images: Sequence[np.nda
             if step + 1 == s.early_steps:
                 early = _foreground_mean(_evaluate(model, images, labels, split.val, classes, s.ignore_label, device))
         val_curve.append(_foreground_mean(_evaluate(model, images, labels, split.val, classes, s.ignore_label, device)))
-    test = _evaluate(model, images, labels, split.test, classes, s.ignore_label, device)
+    test_preds: list[np.ndarray] = []
+    test = _evaluate(model, images, labels, split.test, classes, s.ignore_label, device, test_preds)
+    measures = measurement_errors(test_preds, [labels[i][z] for i, z in split.test], classes, s.ignore_label)
     out: dict[str, Any] = {
         "val_dice": val_curve, "early_dice": early if early is not None else val_curve[0],
         "test_dice": _foreground_mean(test), "test_dice_per_class": test.tolist(), "curve_area": curve_area(val_curve),
         "epochs_to_threshold": epochs_to_reach(val_curve, s.dice_threshold),
         "final_loss": float(loss.detach()), "seconds": round(time.perf_counter() - t0, 2),
+        "measures": measures,
     }
     if keep_predictions:
-        model.eval()
-        out["predictions"] = [predict_slice(model, images[i][z], device).astype(np.uint8)
-                              for i, z in split.test[:keep_predictions]]
+        out["predictions"] = test_preds[:keep_predictions]
     return out
