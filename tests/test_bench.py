@@ -277,7 +277,11 @@ def test_the_html_report_in_a_real_browser(report, tmp_path):
     first = dom.index("class=\"headline\"")
     assert first < dom.index("<table") and saved["labels_saved"][0]["sentence"].split(",")[0] in dom
     assert dom.count("<table") == len(saved["summary"]) + 5  # sizes, per class, measurement error, pairs, settings, split
-    assert "Measurement error" in dom and "mean thickness (px) error" in dom
+    assert "Measurement error" in dom and "mean thickness (px) error" in dom and "; relative " in dom
+    # the measurement errors of one run are those of its own recorded values
+    run = saved["runs"][0]
+    f = run["measures"]["1"]["fraction"]
+    assert f["abs_error"] == pytest.approx(np.mean(np.abs(np.subtract(f["pred"], f["truth"]))))
     for title in ("Learning curve", "Final test Dice per replicate", "Validation Dice per epoch", "Test predictions"):
         assert title in dom
     assert dom.count("data:image/png;base64,") == 4 and "<script" not in dom.lower()

@@ -8,8 +8,8 @@ __all__ = ["ci", "epochs_cell", "measure_table", "MEASURE_NOTE"]
 MEASURE_NOTE = ("What users measure, computed on every test slice from the prediction and from the label, per "
                 "class: phase fraction, specific surface (interface length per area, 1/px), mean local thickness "
                 "(px) and connected objects. Each cell: the mean absolute error over replicates [95 % t interval] "
-                "(n), and for warm starts the paired difference of that error from random init's (negative: "
-                "smaller error; *: its interval excludes zero).")
+                "(n), the mean relative error (of the label's value), and for warm starts the paired difference "
+                "of the absolute error from random init's (negative: smaller error; *: its interval excludes zero).")
 
 
 def ci(r: dict[str, Any], d: int = 3) -> str:
@@ -42,10 +42,14 @@ def measure_table(result: dict[str, Any]) -> tuple[list[str], list[list[str]]]:
     for n, by in result["summary"].items():
         for cid, row in by.items():
             errs, vs = row.get("measure_errors") or {}, row.get("measure_errors_vs_random") or {}
+            rel = row.get("measure_relative_errors") or {}
             for k in sorted({key.split("/")[0] for key in errs}, key=int):
                 cells = []
                 for q in QUANTITIES:
                     cell = ci(errs.get(f"{k}/{q}", {}))
+                    r = rel.get(f"{k}/{q}") or {}
+                    if r.get("mean") is not None:
+                        cell += f"; relative {100 * r['mean']:.1f} %"
                     d = vs.get(f"{k}/{q}")
                     if d and d.get("mean") is not None:
                         cell += f"; vs random {d['mean']:+.3f}{' *' if d['significant'] else ''}"

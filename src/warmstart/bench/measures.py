@@ -132,6 +132,7 @@ def measurement_errors(preds: Sequence[np.ndarray], labels: Sequence[np.ndarray]
     return out
 
 
-def mean_abs_errors(errors: Mapping[str, Any]) -> dict[str, float | None]:
-    """``{"class/quantity": mean absolute error}`` of :func:`measurement_errors`'s answer."""
-    return {f"{k}/{q}": v[q]["abs_error"] for k, v in errors.items() for q in QUANTITIES}
+def mean_abs_errors(errors: Mapping[str, Any], kind: str = "abs_error") -> dict[str, float | None]:
+    """``{"class/quantity": mean error}`` of :func:`measurement_errors`'s answer (``kind``:
+    ``abs_error`` or ``rel_error``)."""
+    return {f"{k}/{q}": v[q][kind] for k, v in errors.items() for q in QUANTITIES}

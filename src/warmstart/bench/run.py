@@ -158,6 +158,8 @@ def summarize(runs: list[dict[str, Any]], contenders: list[Contender], s: BenchS
             errs = [mean_abs_errors(r["measures"]) for r in rs if r.get("measures")]  # runs before measures: none
             if errs:
                 row["measure_errors"] = {k: mean_ci([e[k] for e in errs]) for k in errs[0]}
+                rel = [mean_abs_errors(r["measures"], "rel_error") for r in rs if r.get("measures")]
+                row["measure_relative_errors"] = {k: mean_ci([e[k] for e in rel]) for k in rel[0]}
             if c.baseline:
                 ref = {r["seed"]: r for r in by[c.baseline]}
                 common = [r for r in rs if r["seed"] in ref]
