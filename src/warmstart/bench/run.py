@@ -15,10 +15,10 @@ from ..base.cores import usable_cores
 from ..base.lock import locks_output
 from ..errors import WarmstartError
 from .data import load_pairs, make_split, n_classes
-from .settings import BenchSettings
 from .labels_saved import headline
 from .measures import mean_abs_errors
 from .ranking import recommendation
+from .settings import BenchSettings
 from .stats import bounded_ci, epochs_to_reach, mean_ci, paired_difference
 
 __all__ = ["Contender", "run_bench", "summarize"]
