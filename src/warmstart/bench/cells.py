@@ -3,13 +3,21 @@ from __future__ import annotations
 
 from typing import Any
 
-__all__ = ["ci", "epochs_cell", "measure_table", "MEASURE_NOTE"]
+__all__ = ["ci", "num", "epochs_cell", "measure_table", "pairs_table", "MEASURE_NOTE", "PAIRS_NOTE"]
+
+PAIRS_NOTE = ("Final test Dice, paired by replicate: paired t test, p values adjusted for the whole table by "
+              "Holm's step-down method.")
 
 MEASURE_NOTE = ("What users measure, computed on every test slice from the prediction and from the label, per "
                 "class: phase fraction, specific surface (interface length per area, 1/px), mean local thickness "
                 "(px) and connected objects. Each cell: the mean absolute error over replicates [95 % t interval] "
                 "(n), the mean relative error (of the label's value), and for warm starts the paired difference "
                 "of the absolute error from random init's (negative: smaller error; *: its interval excludes zero).")
+
+
+def num(x: Any, d: int = 3) -> str:
+    """A number with ``d`` decimals, or ``n/a``."""
+    return "n/a" if x is None else f"{x:.{d}f}"
 
 
 def ci(r: dict[str, Any], d: int = 3) -> str:
@@ -55,4 +63,13 @@ def measure_table(result: dict[str, Any]) -> tuple[list[str], list[list[str]]]:
                         cell += f"; vs random {d['mean']:+.3f}{' *' if d['significant'] else ''}"
                     cells.append(cell)
                 rows.append([str(n), labels[cid], str(k), *cells])
+    return head, rows
+
+
+def pairs_table(result: dict[str, Any]) -> tuple[list[str], list[list[str]]]:
+    """Every pair of contenders (:mod:`.ranking`): difference of final test Dice, pairs, p and Holm's p."""
+    labels = {c["id"]: c["label"] for c in result["contenders"]}
+    head = ["tiles", "contender", "vs", "difference", "pairs", "p", "p (Holm)"]
+    rows = [[str(r["size"]), labels[r["a"]], labels[r["b"]], num(r["difference"]), str(r["pairs"]), num(r["p"]),
+             num(r["p_holm"])] for r in (result.get("recommendation") or {}).get("pairs") or []]
     return head, rows

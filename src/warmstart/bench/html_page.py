@@ -12,7 +12,7 @@ import html
 from typing import Any, Sequence
 
 from .cells import ci as _ci
-from .cells import MEASURE_NOTE, epochs_cell, measure_table
+from .cells import MEASURE_NOTE, PAIRS_NOTE, epochs_cell, measure_table, pairs_table
 
 __all__ = ["html_page", "CLASS_COLOURS"]
 
@@ -94,13 +94,9 @@ def html_page(result: dict[str, Any], figures: Sequence[tuple[str, str]], intro:
                          for k, name in enumerate(class_names))
         parts.append(f"<h2>{_e(pred[0])}</h2><p class='legend'>Classes:{legend}</p>"
                      f"<img alt='{_e(pred[0])}' src='data:image/png;base64,{pred[1]}'>")
-    pairs = rec.get("pairs") or []
-    if pairs:
-        parts.append("<h2>Every pair of contenders</h2><p>Final test Dice, paired by replicate: paired t test, p "
-                     "values adjusted for the whole table by Holm's step-down method.</p>" + _table(
-                         ["tiles", "contender", "vs", "difference", "pairs", "p", "p (Holm)"],
-                         [[r["size"], labels[r["a"]], labels[r["b"]], _f(r["difference"]), r["pairs"], _f(r["p"]),
-                           _f(r["p_holm"])] for r in pairs]))
+    head, rows = pairs_table(result)
+    if rows:
+        parts.append(f"<h2>Every pair of contenders</h2><p>{_e(PAIRS_NOTE)}</p>" + _table(head, rows))
     parts.append("<h2>Settings</h2>" + _table(["setting", "value"], [[k, v] for k, v in s.items()]))
     split = result["split"]
     parts.append("<h2>Split</h2>" + _table(["set", "slices (image, z)"], [
@@ -108,10 +104,6 @@ def html_page(result: dict[str, Any], figures: Sequence[tuple[str, str]], intro:
         ["validation", ", ".join(f"{i}:{z}" for i, z in split["val"])]]))
     parts.append("</body></html>")
     return "".join(parts)
-
-
-def _f(x: Any) -> str:
-    return "n/a" if x is None else f"{x:.3f}"
 
 
 def _per_class(result: dict[str, Any], labels: dict[str, str], class_names: Sequence[str]) -> str:

@@ -25,7 +25,7 @@ from typing import Any, Mapping, Sequence
 
 import numpy as np
 
-__all__ = ["QUANTITIES", "NAMES", "local_thickness", "phase_measures", "measurement_errors", "mean_abs_errors"]
+__all__ = ["QUANTITIES", "NAMES", "local_thickness", "phase_measures", "measurement_errors", "errors_by_key"]
 
 QUANTITIES = ("fraction", "surface", "thickness", "objects")
 NAMES = {"fraction": "phase fraction", "surface": "specific surface (1/px)", "thickness": "mean thickness (px)",
@@ -132,7 +132,7 @@ def measurement_errors(preds: Sequence[np.ndarray], labels: Sequence[np.ndarray]
     return out
 
 
-def mean_abs_errors(errors: Mapping[str, Any], kind: str = "abs_error") -> dict[str, float | None]:
+def errors_by_key(errors: Mapping[str, Any], kind: str = "abs_error") -> dict[str, float | None]:
     """``{"class/quantity": mean error}`` of :func:`measurement_errors`'s answer (``kind``:
     ``abs_error`` or ``rel_error``)."""
     return {f"{k}/{q}": v[q][kind] for k, v in errors.items() for q in QUANTITIES}

@@ -12,15 +12,12 @@ import numpy as np
 
 from ..base.atomic import write_json
 from .cells import ci as _ci
-from .cells import MEASURE_NOTE, epochs_cell, measure_table
+from .cells import MEASURE_NOTE, PAIRS_NOTE, epochs_cell, measure_table, pairs_table
+from .cells import num as _num
 
 __all__ = ["write_report", "markdown", "verdicts"]
 
 _NAMES = {"test_dice": "final test Dice", "early_dice": "early validation Dice", "curve_area": "curve area"}
-
-
-def _num(x: Any, d: int = 3) -> str:
-    return "n/a" if x is None else f"{x:.{d}f}"
 
 
 def verdicts(result: dict[str, Any]) -> list[str]:
@@ -92,15 +89,10 @@ def markdown(result: dict[str, Any]) -> str:
     if rows:
         lines += ["## Measurement error", "", MEASURE_NOTE, "", "| " + " | ".join(head) + " |",
                   "|" + "---|" * len(head)] + ["| " + " | ".join(r) + " |" for r in rows] + [""]
-    if rec.get("pairs"):
-        lines += ["## Every pair of contenders", "",
-                  "Final test Dice, paired by replicate: paired t test, p values adjusted for the whole table by "
-                  "Holm's step-down method.", "",
-                  "| tiles | contender | vs | difference | pairs | p | p (Holm) |", "|---|---|---|---|---|---|---|"]
-        for r in rec["pairs"]:
-            lines.append(f"| {r['size']} | {labels[r['a']]} | {labels[r['b']]} | {_num(r['difference'])} | {r['pairs']} | "
-                         f"{_num(r['p'])} | {_num(r['p_holm'])} |")
-        lines.append("")
+    head, rows = pairs_table(result)
+    if rows:
+        lines += ["## Every pair of contenders", "", PAIRS_NOTE, "", "| " + " | ".join(head) + " |",
+                  "|" + "---|" * len(head)] + ["| " + " | ".join(r) + " |" for r in rows] + [""]
     lines += ["## Contenders", ""]
     for c in result["contenders"]:
         lines.append(f"- **{c['label']}** (`{c['id']}`): {c['spec']['name']} {c['spec']['params']}; input: {c['normalization']}")

@@ -16,7 +16,7 @@ from ..base.lock import locks_output
 from ..errors import WarmstartError
 from .data import load_pairs, make_split, n_classes
 from .labels_saved import headline
-from .measures import mean_abs_errors
+from .measures import errors_by_key
 from .ranking import recommendation
 from .settings import BenchSettings
 from .stats import bounded_ci, epochs_to_reach, mean_ci, paired_difference
@@ -155,11 +155,11 @@ def summarize(runs: list[dict[str, Any]], contenders: list[Contender], s: BenchS
                                                  "threshold": t95, "reached": sum(e is not None for e in e95),
                                                  "runs": len(rs)}
             row["seconds"] = mean_ci([r["seconds"] for r in rs])
-            errs = [mean_abs_errors(r["measures"]) for r in rs if r.get("measures")]  # runs before measures: none
-            if errs:
-                row["measure_errors"] = {k: mean_ci([e[k] for e in errs]) for k in errs[0]}
-                rel = [mean_abs_errors(r["measures"], "rel_error") for r in rs if r.get("measures")]
-                row["measure_relative_errors"] = {k: mean_ci([e[k] for e in rel]) for k in rel[0]}
+            measured = [r["measures"] for r in rs if r.get("measures")]  # runs recorded before measures: none
+            for name, kind in (("measure_errors", "abs_error"), ("measure_relative_errors", "rel_error")):
+                errs = [errors_by_key(m, kind) for m in measured]
+                if errs:
+                    row[name] = {k: mean_ci([e[k] for e in errs]) for k in errs[0]}
             if c.baseline:
                 ref = {r["seed"]: r for r in by[c.baseline]}
                 common = [r for r in rs if r["seed"] in ref]
@@ -167,8 +167,8 @@ def summarize(runs: list[dict[str, Any]], contenders: list[Contender], s: BenchS
                                     for f in FIGURES}
                 both = [r for r in common if r.get("measures") and ref[r["seed"]].get("measures")]
                 if both:  # absolute measurement error, this contender minus random init: negative is better
-                    mine = [mean_abs_errors(r["measures"]) for r in both]
-                    theirs = [mean_abs_errors(ref[r["seed"]]["measures"]) for r in both]
+                    mine = [errors_by_key(r["measures"]) for r in both]
+                    theirs = [errors_by_key(ref[r["seed"]]["measures"]) for r in both]
                     row["measure_errors_vs_random"] = {k: paired_difference([m[k] for m in mine], [t[k] for t in theirs])
                                                        for k in mine[0]}
             rows[c.id] = row
