@@ -12,17 +12,13 @@ from __future__ import annotations
 import json
 import warnings
 
-import numpy as np
 import pytest
 
 torch = pytest.importorskip("torch")
 pytest.importorskip("dynamic_network_architectures")
 
 import warmstart as ws  # noqa: E402
-from conftest import textured  # noqa: E402
 from warmstart.cli import main  # noqa: E402
-from warmstart.corpus.build import build_corpus  # noqa: E402
-from warmstart.corpus.settings import CorpusSettings, SamplingSettings  # noqa: E402
 from warmstart.encoders import build_encoder  # noqa: E402
 from warmstart.encoders.nnunet import architecture_from_plans  # noqa: E402
 from tiny_plans import PLANS  # noqa: E402
@@ -47,12 +43,10 @@ def plans(tmp_path_factory):
 
 @pytest.fixture(scope="module")
 def cubes(tmp_path_factory):
-    root = tmp_path_factory.mktemp("nn3d")
-    (root / "a").mkdir()
-    for i in range(2):
-        np.save(root / "a" / f"v{i}.npy", textured(shape=(32, 48, 48), seed=i))
-    s = CorpusSettings(sampling=SamplingSettings(spatial_dims=3, patch_size=16, assume_cubic_voxels=True))
-    return build_corpus(root / "a", root / "c.zarr", s, report=False, progress=False).path
+    from conftest import tiny_corpus
+
+    return tiny_corpus(tmp_path_factory.mktemp("nn3d"), n=2, shape=(32, 48, 48),
+                       sampling=dict(spatial_dims=3, patch_size=16, assume_cubic_voxels=True))
 
 
 @pytest.fixture(scope="module")

@@ -13,8 +13,6 @@ import pytest
 torch = pytest.importorskip("torch")
 
 from conftest import textured  # noqa: E402
-from warmstart.corpus.build import build_corpus  # noqa: E402
-from warmstart.corpus.settings import CorpusSettings, SamplingSettings  # noqa: E402
 from warmstart.errors import PretrainError  # noqa: E402
 from warmstart.pretrain.loop import pretrain  # noqa: E402
 from warmstart.pretrain.settings import PretrainSettings  # noqa: E402
@@ -25,12 +23,10 @@ FAST = dict(encoder="unet", encoder_params={"base_width": 4, "depth": 3}, batch_
 
 @pytest.fixture(scope="module")
 def cubes(tmp_path_factory):
-    root = tmp_path_factory.mktemp("cubes")
-    (root / "a").mkdir()
-    for i in range(2):
-        np.save(root / "a" / f"v{i}.npy", textured(shape=(16, 48, 48), seed=i))
-    s = CorpusSettings(sampling=SamplingSettings(spatial_dims=3, patch_size=16, assume_cubic_voxels=True))
-    return build_corpus(root / "a", root / "c.zarr", s, report=False, progress=False).path
+    from conftest import tiny_corpus
+
+    return tiny_corpus(tmp_path_factory.mktemp("cubes"), n=2, shape=(16, 48, 48),
+                       sampling=dict(spatial_dims=3, patch_size=16, assume_cubic_voxels=True))
 
 
 def _losses(run: Path) -> dict[int, float]:

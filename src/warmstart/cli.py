@@ -411,8 +411,8 @@ def cmd_export(args: argparse.Namespace) -> int:
         from .export.nnunet_file import export_for_nnunet
 
         if args.with_decoder:
-            raise ExportError("--with-decoder writes warmstart's U-Net decoder, which nnU-Net's network has no place "
-                              "for; export --for nnunet without it (the file holds nnU-Net's whole network)")
+            raise ExportError("--for nnunet writes nnU-Net's whole network, with the decoder the run trained where it "
+                              "trained one: leave out --with-decoder")
         path, m = export_for_nnunet(args.run, args.output, weights=args.weights, checkpoint=args.checkpoint,
                                     seed=args.seed)
     else:

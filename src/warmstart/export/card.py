@@ -80,9 +80,8 @@ def summary_text(m: Mapping[str, Any]) -> str:
     stages = " ".join(f"{s['channels']}@{s['stride']}" for s in e["spec"]["stages"])
     rng = v.get("patch_range")
     d = m.get("decoder")
-    n_enc = m["tensors"]["parameters"] - (d["parameters"] if d else 0)
-    if m.get("nnunet"):
-        n_enc = m["tensors"]["parameters"]  # the whole network
+    # an nnU-Net file counts its whole network; an encoder file leaves its decoder out
+    n_enc = m["tensors"]["parameters"] - (d["parameters"] if d and not m.get("nnunet") else 0)
     params = ", ".join(f"{k}={val}" for k, val in e["spec"]["params"].items() if k not in ("architecture", "library"))
     lines = [
         f"encoder     {e['spec']['name']} ({params}); {n_enc:,} parameters{' (whole network)' if m.get('nnunet') else ''}; "

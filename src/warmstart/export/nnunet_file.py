@@ -71,7 +71,7 @@ def export_for_nnunet(run: str | os.PathLike[str], out: str | os.PathLike[str], 
 
     try:
         trained = read_networks(Path(run))["decoder"]
-    except Exception:  # no networks.json: packed_run names the problem
+    except ExportError:  # no or an unreadable networks.json: packed_run names the problem
         trained = None
     own = bool(trained) and trained.get("kind") == "nnunet"  # the run trained nnU-Net's own decoder
     arrays, manifest = packed_run(run, weights=weights, checkpoint=checkpoint, with_decoder=own)
