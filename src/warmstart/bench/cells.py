@@ -3,7 +3,8 @@ from __future__ import annotations
 
 from typing import Any
 
-__all__ = ["ci", "num", "epochs_cell", "measure_table", "pairs_table", "MEASURE_NOTE", "PAIRS_NOTE"]
+__all__ = ["ci", "num", "epochs_cell", "measure_table", "pairs_table", "volume_table", "unit", "size_heading",
+           "measure_note", "shown_slices", "MEASURE_NOTE", "PAIRS_NOTE"]
 
 PAIRS_NOTE = ("Final test Dice, paired by replicate: paired t test, p values adjusted for the whole table by "
               "Holm's step-down method.")
@@ -13,6 +14,34 @@ MEASURE_NOTE = ("What users measure, computed on every test slice from the predi
                 "(px) and connected objects. Each cell: the mean absolute error over replicates [95 % t interval] "
                 "(n), the mean relative error (of the label's value), and for warm starts the paired difference "
                 "of the absolute error from random init's (negative: smaller error; *: its interval excludes zero).")
+
+
+def unit(result: dict[str, Any]) -> str:
+    """What the training sets count: ``tile`` or ``cube`` (reports written before cubes: tiles)."""
+    return str(result.get("unit", "tile"))
+
+
+def size_heading(result: dict[str, Any], n: Any) -> str:
+    """``4 training cubes (442,368 labelled voxels)``: a size's heading, with its labelled voxels."""
+    u = unit(result)
+    vox = (result.get("labelled_voxels") or {}).get(str(n))
+    return f"{n} training {u}{'' if int(n) == 1 else 's'}" + (f" ({vox:,} labelled voxels)" if vox else "")
+
+
+def measure_note(result: dict[str, Any]) -> str:
+    """:data:`MEASURE_NOTE`, for slabs in 3-D when the test set is slabs."""
+    if unit(result) != "cube":
+        return MEASURE_NOTE
+    return MEASURE_NOTE.replace("on every test slice", "on every test slab, in 3-D,").replace(
+        "interface length per area, 1/px", "interface area per volume, 1/voxel").replace("(px)", "(voxels)")
+
+
+def shown_slices(split: dict[str, Any], count: int = 3) -> list[tuple[int, int]]:
+    """The test slices the report's montage shows: the first test slices, or the middle slice of
+    each of the first test slabs (the slices the benchmark keeps predictions of)."""
+    if split.get("kind") == "cubes":
+        return [(i, (a + b - 1) // 2) for i, a, b in split["test_regions"][:count]]
+    return [tuple(t) for t in split["test"][:count]]  # type: ignore[misc]
 
 
 def num(x: Any, d: int = 3) -> str:
@@ -45,7 +74,7 @@ def measure_table(result: dict[str, Any]) -> tuple[list[str], list[list[str]]]:
     from .measures import NAMES, QUANTITIES
 
     labels = {c["id"]: c["label"] for c in result["contenders"]}
-    head = ["tiles", "contender", "class"] + [f"{NAMES[q]} error" for q in QUANTITIES]
+    head = [f"{unit(result)}s", "contender", "class"] + [f"{NAMES[q]} error" for q in QUANTITIES]
     rows = []
     for n, by in result["summary"].items():
         for cid, row in by.items():
@@ -69,7 +98,27 @@ def measure_table(result: dict[str, Any]) -> tuple[list[str], list[list[str]]]:
 def pairs_table(result: dict[str, Any]) -> tuple[list[str], list[list[str]]]:
     """Every pair of contenders (:mod:`.ranking`): difference of final test Dice, pairs, p and Holm's p."""
     labels = {c["id"]: c["label"] for c in result["contenders"]}
-    head = ["tiles", "contender", "vs", "difference", "pairs", "p", "p (Holm)"]
+    head = [f"{unit(result)}s", "contender", "vs", "difference", "pairs", "p", "p (Holm)"]
     rows = [[str(r["size"]), labels[r["a"]], labels[r["b"]], num(r["difference"]), str(r["pairs"]), num(r["p"]),
              num(r["p_holm"])] for r in (result.get("recommendation") or {}).get("pairs") or []]
+    return head, rows
+
+
+def volume_table(result: dict[str, Any]) -> tuple[list[str], list[list[str]]]:
+    """Mean foreground test Dice on each labelled volume's test voxels (a column per volume that
+    holds test voxels), per size and contender; no rows for runs recorded before this figure."""
+    from .stats import bounded_ci
+
+    names = [v["name"] for v in result.get("labels", [])]
+    first = next((r["test_dice_per_volume"] for r in result["runs"] if r.get("test_dice_per_volume")), None)
+    if not first:
+        return [], []
+    keys = sorted(first, key=int)
+    rows = []
+    for n in result["settings"]["sizes"]:
+        for c in result["contenders"]:
+            rs = [r for r in result["runs"] if r["size"] == n and r["contender"] == c["id"] and r.get("test_dice_per_volume")]
+            if rs:
+                rows.append([str(n), c["label"], *(ci(bounded_ci([r["test_dice_per_volume"][k] for r in rs])) for k in keys)])
+    head = [f"{unit(result)}s", "contender"] + [names[int(k)] if int(k) < len(names) else k for k in keys]
     return head, rows

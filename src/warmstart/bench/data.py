@@ -40,20 +40,35 @@ class LabelledPair:
 
 @dataclass
 class Split:
-    """Which slices test and validate, and the training tiles (nested by order).
+    """Which slices test and validate, and the training set (nested by order).
 
-    ``test``/``val``: (pair, z) whole slices. ``tiles``: (pair, z, y, x, h, w), the first ``n``
-    of them are the training set of size ``n``.
+    ``test``/``val``: (pair, z) whole slices. ``tiles``: (pair, z, y, x, h, w). With
+    ``kind="tiles"`` the first ``n`` tiles are the training set of size ``n``; with
+    ``kind="cubes"`` (:mod:`.cubes`) the first ``n`` cubes (pair, z, y, x, d, h, w) are, ``tiles``
+    holds their slices in the same order, and ``test``/``val`` are the slices of the slabs
+    ``test_regions``/``val_regions`` (pair, z0, z1).
     """
 
     test: list[tuple[int, int]] = field(default_factory=list)
     val: list[tuple[int, int]] = field(default_factory=list)
     tiles: list[tuple[int, int, int, int, int, int]] = field(default_factory=list)
     seed: int = 0
+    kind: str = "tiles"
+    cubes: list[tuple[int, int, int, int, int, int, int]] = field(default_factory=list)
+    test_regions: list[tuple[int, int, int]] = field(default_factory=list)
+    val_regions: list[tuple[int, int, int]] = field(default_factory=list)
+
+    def n_tiles(self, n: int) -> int:
+        """2-D training tiles in the training set of size ``n`` (the slices of ``n`` cubes)."""
+        return n if self.kind == "tiles" else sum(c[4] for c in self.cubes[:n])
 
     def to_dict(self) -> dict[str, Any]:
-        return {"seed": self.seed, "test": [list(t) for t in self.test], "val": [list(v) for v in self.val],
-                "tiles": [list(f) for f in self.tiles]}
+        out: dict[str, Any] = {"seed": self.seed, "kind": self.kind, "test": [list(t) for t in self.test],
+                               "val": [list(v) for v in self.val], "tiles": [list(f) for f in self.tiles]}
+        if self.kind == "cubes":
+            out.update(cubes=[list(c) for c in self.cubes], test_regions=[list(r) for r in self.test_regions],
+                       val_regions=[list(r) for r in self.val_regions])
+        return out
 
 
 def read_pairs(labels: str | os.PathLike[str]) -> list[tuple[str, Path, Path]]:
@@ -165,7 +180,12 @@ def make_split(pairs: list[LabelledPair], s: BenchSettings) -> Split:
 
     Slices are drawn evenly over all pairs (each pair in turn) from a generator seeded with
     ``split_seed``; tiles prefer regions holding at least two classes (up to 20 tries each).
+    With ``s.training_set == "cubes"``: slabs and cubes instead (:func:`.cubes.make_cube_split`).
     """
+    if s.training_set == "cubes":
+        from .cubes import make_cube_split
+
+        return make_cube_split(pairs, s)
     rng = np.random.default_rng(s.split_seed)
     slices = [(i, z) for i, p in enumerate(pairs) for z in range(p.image.shape[0])]
     order = [slices[k] for k in rng.permutation(len(slices))]

@@ -12,7 +12,7 @@ import html
 from typing import Any, Sequence
 
 from .cells import ci as _ci
-from .cells import MEASURE_NOTE, PAIRS_NOTE, epochs_cell, measure_table, pairs_table
+from .cells import PAIRS_NOTE, epochs_cell, measure_note, measure_table, pairs_table, size_heading, unit, volume_table
 
 __all__ = ["html_page", "CLASS_COLOURS"]
 
@@ -73,7 +73,7 @@ def html_page(result: dict[str, Any], figures: Sequence[tuple[str, str]], intro:
 
             body.append([labels[cid], _ci(row["test_dice"]), _ci(row["early_dice"]), _ci(row["curve_area"]),
                          epochs_cell(row), d("test_dice"), d("early_dice")])
-        parts.append(f"<h2>{_e(n)} training tile(s)</h2>" + _table(
+        parts.append(f"<h2>{_e(size_heading(result, n))}</h2>" + _table(
             ["contender", "final test Dice", "early Dice", "curve area", "epochs to 95 % of random's best (reached)",
              "test Dice vs random", "early Dice vs random"], body))
     parts.append("<p><small>Means over replicates with 95 % intervals (n: replicates): Dice and curve area on the "
@@ -85,9 +85,12 @@ def html_page(result: dict[str, Any], figures: Sequence[tuple[str, str]], intro:
             continue
         parts.append(f"<h2>{_e(title)}</h2><img alt='{_e(title)}' src='data:image/png;base64,{b64}'>")
     parts.append(_per_class(result, labels, class_names))
+    head, rows = volume_table(result)
+    if rows:
+        parts.append("<h2>Test Dice per labelled volume</h2>" + _table(head, rows))
     head, rows = measure_table(result)
     if rows:
-        parts.append(f"<h2>Measurement error</h2><p>{_e(MEASURE_NOTE)}</p>" + _table(head, rows))
+        parts.append(f"<h2>Measurement error</h2><p>{_e(measure_note(result))}</p>" + _table(head, rows))
     pred = next(((t, b) for t, b in figs.items() if t.startswith("Test predictions")), None)
     if pred:
         legend = "".join(f"<span style='background:{CLASS_COLOURS[k % len(CLASS_COLOURS)]}'></span>{_e(name)}"
@@ -99,9 +102,16 @@ def html_page(result: dict[str, Any], figures: Sequence[tuple[str, str]], intro:
         parts.append(f"<h2>Every pair of contenders</h2><p>{_e(PAIRS_NOTE)}</p>" + _table(head, rows))
     parts.append("<h2>Settings</h2>" + _table(["setting", "value"], [[k, v] for k, v in s.items()]))
     split = result["split"]
-    parts.append("<h2>Split</h2>" + _table(["set", "slices (image, z)"], [
-        ["test", ", ".join(f"{i}:{z}" for i, z in split["test"])],
-        ["validation", ", ".join(f"{i}:{z}" for i, z in split["val"])]]))
+    if split.get("kind") == "cubes":
+        parts.append("<h2>Split</h2>" + _table(["set", "image: slices z0-z1, or cube (z, y, x) and side (d, h, w)"], [
+            ["test slabs", ", ".join(f"{i}: {a}-{b - 1}" for i, a, b in split["test_regions"])],
+            ["validation slabs", ", ".join(f"{i}: {a}-{b - 1}" for i, a, b in split["val_regions"])],
+            ["training cubes (in order)", ", ".join(f"{i}: ({z}, {y}, {x}) {d}x{h}x{w}"
+                                                    for i, z, y, x, d, h, w in split["cubes"])]]))
+    else:
+        parts.append("<h2>Split</h2>" + _table(["set", "slices (image, z)"], [
+            ["test", ", ".join(f"{i}:{z}" for i, z in split["test"])],
+            ["validation", ", ".join(f"{i}:{z}" for i, z in split["val"])]]))
     parts.append("</body></html>")
     return "".join(parts)
 
@@ -120,4 +130,4 @@ def _per_class(result: dict[str, Any], labels: dict[str, str], class_names: Sequ
             rows.append([n, label, *per])
     if not rows:
         return ""
-    return "<h2>Test Dice per class</h2>" + _table(["tiles", "contender", *class_names], rows)
+    return "<h2>Test Dice per class</h2>" + _table([f"{unit(result)}s", "contender", *class_names], rows)

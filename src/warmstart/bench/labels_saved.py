@@ -120,10 +120,11 @@ def _count(v: float | str, largest: int) -> str:
     return v if isinstance(v, str) else f"{v:.1f}"
 
 
-def labels_saved_sentence(r: Mapping[str, Any], label: str) -> str:
-    """The headline sentence for one warm start and size (the report's first lines)."""
+def labels_saved_sentence(r: Mapping[str, Any], label: str, unit: str = "tile") -> str:
+    """The headline sentence for one warm start and size (the report's first lines); ``unit``
+    names what the training sets count (``tile`` or ``cube``)."""
     n, size, largest = r["n"], r["size"], r["largest"]
-    tiles = "tile" if size == 1 else "tiles"
+    tiles = unit if size == 1 else f"{unit}s"
     if r["status"] == "n/a":
         return f"{label}: labels saved at {size} {tiles} cannot be estimated (runs missing)."
     if r["status"] == "not_reached":
@@ -131,12 +132,12 @@ def labels_saved_sentence(r: Mapping[str, Any], label: str) -> str:
                 f"{tiles} (mean final Dice {r['target']:.3f}; n = {n} replicates): no labels saved.")
     about = f"more than {largest}" if r["status"] == "more" else f"about {r['tiles']:.1f}"
     return (f"With {size} labelled {tiles}, {label} reached the Dice that random initialization reached with "
-            f"{about} [{_count(r['low'], largest)}, {_count(r['high'], largest)}] tiles (final Dice {r['target']:.3f}; "
+            f"{about} [{_count(r['low'], largest)}, {_count(r['high'], largest)}] {unit}s (final Dice {r['target']:.3f}; "
             f"n = {n} replicates; 95 % bootstrap interval over replicates).")
 
 
 def headline(runs: Sequence[Mapping[str, Any]], contenders: Sequence[Mapping[str, Any]],
-             sizes: Sequence[int]) -> list[dict[str, Any]]:
+             sizes: Sequence[int], unit: str = "tile") -> list[dict[str, Any]]:
     """Labels saved for every warm start (a contender with a ``baseline``) at 1 and 4 tiles, where
     those sizes were measured and a larger one was too; each entry adds ``contender``, ``label``
     and ``sentence`` to :func:`labels_saved`'s answer."""
@@ -149,5 +150,5 @@ def headline(runs: Sequence[Mapping[str, Any]], contenders: Sequence[Mapping[str
             if size in sizes and size < largest:
                 r = labels_saved(runs, c["id"], c["baseline"], size, sizes)
                 out.append({"contender": c["id"], "label": c["label"], **r,
-                            "sentence": labels_saved_sentence(r, c["label"])})
+                            "sentence": labels_saved_sentence(r, c["label"], unit)})
     return out

@@ -64,7 +64,7 @@ def pairwise(runs: Sequence[Mapping[str, Any]], contenders: Sequence[str], sizes
 
 
 def recommendation(runs: Sequence[Mapping[str, Any]], contenders: Sequence[Mapping[str, Any]],
-                   sizes: Sequence[int], alpha: float = 0.05) -> dict[str, Any]:
+                   sizes: Sequence[int], alpha: float = 0.05, unit: str = "tile") -> dict[str, Any]:
     """Which contender to use, and whether the data support the choice.
 
     The choice is the contender with the highest mean final test Dice at the smallest size (the
@@ -89,7 +89,7 @@ def recommendation(runs: Sequence[Mapping[str, Any]], contenders: Sequence[Mappi
               and (r["difference"] > 0) == (r["a"] == best)]
     supported = len(beaten) == len(against) and bool(against)
     reps = min((r["pairs"] for r in against), default=0)
-    tiles = "tile" if n0 == 1 else "tiles"
+    tiles = unit if n0 == 1 else f"{unit}s"
     if supported:
         why = f"it is better than every other contender after Holm's correction (n = {reps} replicates)"
     else:

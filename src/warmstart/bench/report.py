@@ -12,7 +12,8 @@ import numpy as np
 
 from ..base.atomic import write_json
 from .cells import ci as _ci
-from .cells import MEASURE_NOTE, PAIRS_NOTE, epochs_cell, measure_table, pairs_table
+from .cells import PAIRS_NOTE, epochs_cell, measure_note, measure_table, pairs_table, shown_slices, size_heading, unit, \
+    volume_table
 from .cells import num as _num
 
 __all__ = ["write_report", "markdown", "verdicts"]
@@ -25,6 +26,7 @@ def verdicts(result: dict[str, Any]) -> list[str]:
     significant at 95 % (its t interval excludes zero)."""
     out = []
     labels = {c["id"]: c["label"] for c in result["contenders"]}
+    u = unit(result)
     for n, rows in result["summary"].items():
         for cid, row in rows.items():
             for f, d in row.get("vs_random", {}).items():
@@ -32,7 +34,7 @@ def verdicts(result: dict[str, Any]) -> list[str]:
                     continue
                 sig = "significant at 95 %" if d["significant"] else "not significant at 95 %"
                 p = "n/a" if d["wilcoxon_p"] is None else f"{d['wilcoxon_p']:.3g}"
-                out.append(f"{labels[cid]}, {n} tile(s), {_NAMES[f]}: {d['mean']:+.3f} vs random "
+                out.append(f"{labels[cid]}, {n} {u}(s), {_NAMES[f]}: {d['mean']:+.3f} vs random "
                            f"(95 % CI {_num(d['low'])} to {_num(d['high'])}, Wilcoxon p = {p}, better in {d['wins']} of "
                            f"{d['pairs']} replicates): {sig}.")
     return out
@@ -41,6 +43,21 @@ def verdicts(result: dict[str, Any]) -> list[str]:
 def intro(result: dict[str, Any]) -> str:
     """The paragraph that describes the set-up (the same in bench.md and bench.html)."""
     s = result["settings"]
+    if unit(result) == "cube":
+        split = result["split"]
+        return (f"{len(result['contenders'])} contenders, training sets of {', '.join(map(str, s['sizes']))} labelled "
+                f"cube(s) of up to {s['cube_size']} voxels a side (nested), {s['replicates']} replicates each, "
+                f"{s['epochs']} epochs x {s['steps_per_epoch']} steps; 3-D contenders: {s['cube_batch_size']} patches of "
+                f"{s['cube_patch_size']} voxels a side per step, predicted by sliding windows of that side overlapping by "
+                f"{s['window_overlap']:.0%} with Gaussian blending; 2-D contenders: {s['batch_size']} patches of up to "
+                f"{s['patch_size']} px per step from the cubes' slices, predicted slice by slice. {result['classes']} "
+                f"classes; test: {len(split['test_regions'])} slabs of {s['region_slices']} whole slices "
+                f"({len(split['test'])} slices), validation: {len(split['val_regions'])} slab(s) ({len(split['val'])} "
+                f"slices), every cube at least {s['gap_slices']} slices from them; every contender is scored on the same "
+                f"test voxels; device {result['device']}. Means over replicates with 95 % intervals (Dice and curve "
+                "area: Student t on the logit scale, so they stay inside [0, 1]; other figures: Student t); differences "
+                "are paired by replicate (same patches and decoder initialization within 2-D and within 3-D) and keep "
+                "signed Student t intervals.")
     return (f"{len(result['contenders'])} contenders, training sets of {', '.join(map(str, s['sizes']))} tile(s) of "
             f"{s['tile_size']} px, {s['replicates']} replicates each, {s['epochs']} epochs x {s['steps_per_epoch']} steps of "
             f"{s['batch_size']} patches of {s['patch_size']} px; {result['classes']} classes; test: "
@@ -60,7 +77,7 @@ def markdown(result: dict[str, Any]) -> str:
     lines = ["# Few-shot segmentation benchmark", ""] + ([f"**{t}**" for t in saved] + [""] if saved else []) + [
              intro(result), ""]
     for n, rows in result["summary"].items():
-        lines += [f"## {n} training tile(s)", "",
+        lines += [f"## {size_heading(result, n)}", "",
                   "| contender | final test Dice | early Dice | curve area | epochs to 95 % of random's best "
                   "(reached) | test Dice vs random | early Dice vs random |",
                   "|---|---|---|---|---|---|---|"]
@@ -76,8 +93,12 @@ def markdown(result: dict[str, Any]) -> str:
             lines.append(f"| {labels[cid]} | {_ci(row['test_dice'])} | {_ci(row['early_dice'])} | {_ci(row['curve_area'])} | "
                          f"{e} | {d('test_dice')} | {d('early_dice')} |")
         lines.append("")
-    lines += [f"A tile is a square labelled crop of one slice (up to {s['tile_size']} px a side); the training "
-              "set of each size holds that many tiles. Early Dice: validation Dice after "
+    what = (f"A cube is a labelled sub-volume (up to {s['cube_size']} voxels a side); the training set of each size "
+            "holds that many cubes, and 2-D contenders train on their slices (the same labelled voxels)."
+            if unit(result) == "cube" else
+            f"A tile is a square labelled crop of one slice (up to {s['tile_size']} px a side); the training "
+            "set of each size holds that many tiles.")
+    lines += [f"{what} Early Dice: validation Dice after "
               f"{s['early_steps']} steps. Curve area: the mean validation Dice over the epochs (the area under "
               "the validation-Dice curve divided by its length; higher means good Dice sooner). Epochs to 95 % of "
               "random's best: the first epoch whose validation Dice reaches 95 % of the best mean validation Dice "
@@ -85,9 +106,13 @@ def markdown(result: dict[str, Any]) -> str:
               f"`bench.dice_threshold` {s['dice_threshold']:g} stays in bench.json), averaged "
               "over the replicates that reached it; (reached) counts those replicates out of all. "
               "`*`: the 95 % interval of the paired difference excludes zero.", "", "## In words", ""] + [f"- {v}" for v in verdicts(result)] + [""]
+    head, rows = volume_table(result)
+    if rows:
+        lines += ["## Test Dice per labelled volume", "", "| " + " | ".join(head) + " |", "|" + "---|" * len(head)] + \
+                 ["| " + " | ".join(r) + " |" for r in rows] + [""]
     head, rows = measure_table(result)
     if rows:
-        lines += ["## Measurement error", "", MEASURE_NOTE, "", "| " + " | ".join(head) + " |",
+        lines += ["## Measurement error", "", measure_note(result), "", "| " + " | ".join(head) + " |",
                   "|" + "---|" * len(head)] + ["| " + " | ".join(r) + " |" for r in rows] + [""]
     head, rows = pairs_table(result)
     if rows:
@@ -122,6 +147,7 @@ def _plots(result: dict[str, Any], pairs: Sequence[Any], out: Path) -> list[tupl
 
     cons = result["contenders"]
     sizes = result["settings"]["sizes"]
+    u = unit(result)
     figs = []
     fig, axes = plt.subplots(1, len(sizes), figsize=(3.2 * len(sizes), 3.2), squeeze=False, sharey=True)
     for ax, n in zip(axes[0], sizes):
@@ -130,7 +156,7 @@ def _plots(result: dict[str, Any], pairs: Sequence[Any], out: Path) -> list[tupl
         for k, vals in enumerate(data):
             ax.scatter(np.full(len(vals), k + 1) + np.linspace(-0.08, 0.08, len(vals)), vals, s=14, zorder=3)
         ax.set_xticks(range(1, len(cons) + 1), [c["id"] for c in cons], rotation=30, ha="right")
-        ax.set_title(f"{n} tile(s)")
+        ax.set_title(f"{n} {u}(s)")
     axes[0][0].set_ylabel("test Dice (foreground mean)")
     figs.append(("Final test Dice per replicate", _png(fig)))
     fig, ax = plt.subplots(figsize=(4.5, 3.2))
@@ -147,10 +173,10 @@ def _plots(result: dict[str, Any], pairs: Sequence[Any], out: Path) -> list[tupl
                             [min(1.0, x["high"]) for _, x in band], alpha=0.2)
     ax.set_xscale("log", base=2)
     ax.set_xticks(sizes, [str(n) for n in sizes])
-    ax.set_xlabel("labelled tiles")
+    ax.set_xlabel(f"labelled {u}s")
     ax.set_ylabel("final test Dice")
     ax.legend(fontsize=7)
-    figs.append(("Learning curve: final test Dice against labelled tiles (mean, 95 % band)", _png(fig)))
+    figs.append((f"Learning curve: final test Dice against labelled {u}s (mean, 95 % band)", _png(fig)))
     fig, axes = plt.subplots(1, len(sizes), figsize=(3.2 * len(sizes), 3.0), squeeze=False, sharey=True)
     for ax, n in zip(axes[0], sizes):
         for c in cons:
@@ -163,7 +189,7 @@ def _plots(result: dict[str, Any], pairs: Sequence[Any], out: Path) -> list[tupl
             ax.plot(ep, m, label=c["id"])
             if curves.shape[0] > 1:  # Dice is bounded: the band is drawn inside [0, 1]
                 ax.fill_between(ep, [max(0.0, x["low"]) for x in ci], [min(1.0, x["high"]) for x in ci], alpha=0.2)
-        ax.set_title(f"{n} tile(s)")
+        ax.set_title(f"{n} {u}(s)")
         ax.set_xlabel("epoch")
     axes[0][0].set_ylabel("validation Dice")
     axes[0][-1].legend(fontsize=7)
@@ -171,7 +197,7 @@ def _plots(result: dict[str, Any], pairs: Sequence[Any], out: Path) -> list[tupl
     n0 = sizes[0]
     preds = {c["id"]: out / "runs" / f"{c['id']}-n{n0}-s0-pred.npz" for c in cons}
     preds = {k: np.load(v) for k, v in preds.items() if v.exists()}
-    test = result["split"]["test"][:3]
+    test = shown_slices(result["split"])
     if preds and test:
         from matplotlib.colors import ListedColormap
 
@@ -192,7 +218,8 @@ def _plots(result: dict[str, Any], pairs: Sequence[Any], out: Path) -> list[tupl
                 axes[row][col].set_axis_off()
                 if row == 0:
                     axes[row][col].set_title(title, fontsize=8)
-        figs.append((f"Test predictions, {n0} tile(s), replicate 0", _png(fig)))
+        what = "the middle slice of each test slab" if u == "cube" else "test slices"
+        figs.append((f"Test predictions ({what}), {n0} {u}(s), replicate 0", _png(fig)))
     return figs
 
 

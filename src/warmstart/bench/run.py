@@ -1,6 +1,7 @@
 """``warmstart bench``: every (contender, size, replicate) run, resumable, then the summary and report."""
 from __future__ import annotations
 
+import dataclasses
 import json
 import os
 import warnings
@@ -14,6 +15,7 @@ from ..base.atomic import write_json
 from ..base.cores import usable_cores
 from ..base.lock import locks_output
 from ..errors import WarmstartError
+from .cubes import labelled_voxels
 from .data import load_pairs, make_split, n_classes
 from .labels_saved import headline
 from .measures import errors_by_key
@@ -21,7 +23,7 @@ from .ranking import recommendation
 from .settings import BenchSettings
 from .stats import bounded_ci, epochs_to_reach, mean_ci, paired_difference
 
-__all__ = ["Contender", "run_bench", "summarize"]
+__all__ = ["Contender", "run_bench", "summarize", "training_set"]
 
 FIGURES = ("test_dice", "early_dice", "curve_area")
 # Figures renamed since: an older run record is read with the new names.
@@ -72,7 +74,7 @@ def _contenders(encoders: Sequence[str | os.PathLike[str]], s: BenchSettings, pa
     randoms = {}
     out = []
     for key, spec in specs.items():
-        cid = "random" if len(specs) == 1 else f"random-{spec['name']}-{len(randoms)}"
+        cid = "random" if len(specs) == 1 else f"random-{spec['name']}-{_dims(spec)}d-{len(randoms)}"
         randoms[key] = cid
         out.append(Contender(cid, f"random init ({spec['name']})", spec,
                              normalization="percentiles 0.5 / 99.5 -> 0 / 1, fitted on each volume (default)"))
@@ -94,6 +96,19 @@ def _contenders(encoders: Sequence[str | os.PathLike[str]], s: BenchSettings, pa
                              f"{intensity_line(m)}, then (x - {st['mean']:.4g}) / {st['std']:.4g} (from the file)",
                              parts=parts, leakage=[p.name for p in pairs if p.sha256 in known], mismatch=notes))
     return out
+
+
+def _dims(spec: dict[str, Any]) -> int:
+    return int(spec["params"].get("spatial_dims", 2))
+
+
+def training_set(contenders: Sequence[Contender], s: BenchSettings) -> str:
+    """``tiles`` or ``cubes``: the setting, or with ``auto`` cubes when any contender is 3-D."""
+    if s.training_set != "auto":
+        if s.training_set == "tiles" and any(_dims(c.spec) == 3 for c in contenders):
+            raise WarmstartError("bench.training_set = \"tiles\" cannot train a 3-D contender; use \"cubes\" or \"auto\"")
+        return s.training_set
+    return "cubes" if any(_dims(c.spec) == 3 for c in contenders) else "tiles"
 
 
 def _prepared(contender: Contender, pairs: list[Any]) -> list[np.ndarray]:
@@ -179,7 +194,11 @@ def summarize(runs: list[dict[str, Any]], contenders: list[Contender], s: BenchS
 @locks_output("bench")
 def run_bench(labels: str | os.PathLike[str], encoders: Sequence[str | os.PathLike[str]], out: str | os.PathLike[str],
               settings: BenchSettings | None = None, *, progress: bool = True) -> dict[str, Any]:
-    """Fine-tune random initialization and every encoder file on the same labelled tiles.
+    """Fine-tune random initialization and every encoder file on the same labelled tiles or cubes.
+
+    With any 3-D file (or ``bench.training_set = "cubes"``) the training sets are cubes: 3-D
+    contenders fine-tune on 3-D patches and predict by sliding windows, 2-D contenders on the
+    cubes' slices and predict slice by slice, all scored on the same test slabs.
 
     Parameters
     ----------
@@ -207,8 +226,13 @@ def run_bench(labels: str | os.PathLike[str], encoders: Sequence[str | os.PathLi
     torch.set_num_threads(s.threads or usable_cores())  # one per usable physical core by default
     pairs = load_pairs(labels, s.ignore_label)
     classes = n_classes(pairs, s.ignore_label)
-    split = make_split(pairs, s)
     contenders = _contenders(encoders, s, pairs)
+    s = dataclasses.replace(s, training_set=training_set(contenders, s))
+    split = make_split(pairs, s)
+    unit = "cube" if split.kind == "cubes" else "tile"
+    if unit == "cube":  # 2-D and 3-D side by side: every contender says which it is
+        for c in contenders:
+            c.label = f"{c.label} ({_dims(c.spec)}-D)" if c.file else f"{c.label[:-1]}, {_dims(c.spec)}-D)"
     labs = [p.label for p in pairs]
     device = _device(s)
     planned = [(n, seed, c) for n in s.sizes for seed in range(s.replicates) for c in contenders]
@@ -231,19 +255,20 @@ def run_bench(labels: str | os.PathLike[str], encoders: Sequence[str | os.PathLi
         rec = {"contender": c.id, "size": n, "seed": seed, **r}
         write_json(path, rec)
         runs.append(rec)
-        bar.set_postfix_str(f"{c.id}, {n} tile(s), replicate {seed}: test Dice {r['test_dice']:.3f}")
+        bar.set_postfix_str(f"{c.id}, {n} {unit}(s), replicate {seed}: test Dice {r['test_dice']:.3f}")
     for c in contenders:  # mismatch notes also when every run was reused
         if c.file and c.id not in prepared:
             _prepared(c, pairs)
     result = {
-        "settings": s.to_dict(), "classes": classes, "device": str(device),
+        "settings": s.to_dict(), "classes": classes, "device": str(device), "unit": unit,
+        "labelled_voxels": {str(n): labelled_voxels(split, n, [p.label.shape for p in pairs]) for n in s.sizes},
         "labels": [{"name": p.name, "image": p.image_path, "label": p.label_path, "sha256": p.sha256,
                     "shape": list(p.image.shape)} for p in pairs],
         "split": split.to_dict(), "contenders": [c.to_dict() for c in contenders], "runs": runs,
         "summary": summarize(runs, contenders, s),
     }
-    result["labels_saved"] = headline(runs, result["contenders"], list(s.sizes))
-    result["recommendation"] = recommendation(runs, result["contenders"], list(s.sizes))
+    result["labels_saved"] = headline(runs, result["contenders"], list(s.sizes), unit=unit)
+    result["recommendation"] = recommendation(runs, result["contenders"], list(s.sizes), unit=unit)
     result["report"] = write_report(out, result, pairs)
     return result
 

@@ -21,8 +21,13 @@ class BenchSettings:
     Parameters
     ----------
     sizes : list of int
-        Training-set sizes in tiles; nested (the 4 tiles include the 1, the 16 the 4). A tile is
-        a square labelled crop of one slice of a labelled volume.
+        Training-set sizes in tiles or cubes; nested (the 4 include the 1, the 16 the 4). A tile
+        is a square labelled crop of one slice of a labelled volume; a cube, a labelled
+        sub-volume (``cube_size``).
+    training_set : {"auto", "tiles", "cubes"}
+        What a training set is made of. ``auto``: cubes when any contender is 3-D, else tiles.
+        With cubes, test and validation are slabs of whole slices (:mod:`.cubes`), 3-D
+        contenders train on 3-D patches of the cubes, and 2-D contenders on the cubes' slices.
     replicates : int
         Fine-tuning runs per (contender, size) (formerly ``seeds``). Replicate ``r`` draws the same
         patches and the same decoder initialization for every contender.
@@ -39,10 +44,21 @@ class BenchSettings:
     freeze_encoder_epochs : int
         Keep the encoder fixed for the first N epochs (every contender alike).
     val_slices, test_slices : int
-        Whole slices in the fixed validation and test sets.
+        Whole slices in the fixed validation and test sets (tiles).
+    cube_size : int
+        Side of the training cubes (voxels; clipped to the volume).
+    cube_patch_size, cube_batch_size : int
+        3-D contenders: side of the random 3-D patches drawn from the cubes (voxels; at most
+        the cube's side; also the sliding window's side), and patches per step. 2-D
+        contenders keep ``patch_size`` and ``batch_size``.
+    test_regions, val_regions, region_slices : int
+        Cubes: the test and validation slabs, and their thickness in slices.
+    window_overlap : float
+        3-D inference: sliding windows share this fraction of their side with each neighbour;
+        overlapping logits are blended with a Gaussian weight (:mod:`.window`).
     gap_slices : int
-        Training tiles keep at least this many slices away from validation and test slices
-        (neighbouring slices of a volume are nearly the same image).
+        Training tiles (cubes) keep at least this many slices away from validation and test
+        slices (slabs): neighbouring slices of a volume are nearly the same image.
     split_seed : int
         Seed of the split (recorded in the report).
     dice_threshold : float
@@ -68,6 +84,7 @@ class BenchSettings:
     """
 
     sizes: list[int] = field(default_factory=lambda: [1, 4, 16])
+    training_set: str = "auto"
     replicates: int = 5
     tile_size: int = 256
     patch_size: int = 128
@@ -81,6 +98,13 @@ class BenchSettings:
     val_slices: int = 4
     test_slices: int = 8
     gap_slices: int = 2
+    cube_size: int = 48
+    cube_patch_size: int = 32
+    cube_batch_size: int = 2
+    test_regions: int = 3
+    val_regions: int = 1
+    region_slices: int = 16
+    window_overlap: float = 0.5
     split_seed: int = 0
     dice_threshold: float = 0.8
     early_steps: int = 10
@@ -97,11 +121,18 @@ class BenchSettings:
             raise RecipeError(f"bench.sizes must be a non-empty list of positive tile counts, got {self.sizes}")
         self.sizes = sorted({int(n) for n in self.sizes})
         require_positive(self, "bench", "replicates", "tile_size", "patch_size", "epochs", "steps_per_epoch", "batch_size",
-                         "test_slices", "val_slices", "early_steps")
+                         "test_slices", "val_slices", "early_steps", "cube_size", "cube_patch_size",
+                         "cube_batch_size", "test_regions", "val_regions", "region_slices")
         if self.patch_size > self.tile_size:
             raise RecipeError(f"bench.patch_size {self.patch_size} is larger than bench.tile_size {self.tile_size}")
         if not self.lr > 0 or self.encoder_lr_factor < 0 or self.gap_slices < 0 or self.freeze_encoder_epochs < 0:
             raise RecipeError("bench.lr must be > 0; encoder_lr_factor, gap_slices and freeze_encoder_epochs >= 0")
+        if self.cube_patch_size > self.cube_size:
+            raise RecipeError(f"bench.cube_patch_size {self.cube_patch_size} is larger than bench.cube_size {self.cube_size}")
+        if self.training_set not in ("auto", "tiles", "cubes"):
+            raise RecipeError(f"bench.training_set must be auto, tiles or cubes, got {self.training_set!r}")
+        if not 0 <= self.window_overlap < 1:
+            raise RecipeError(f"bench.window_overlap must be in [0, 1), got {self.window_overlap}")
         if not 0 < self.dice_threshold <= 1:
             raise RecipeError(f"bench.dice_threshold must be in (0, 1], got {self.dice_threshold}")
         if self.device not in ("auto", "cpu", "cuda"):

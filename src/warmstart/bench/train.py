@@ -1,4 +1,4 @@
-"""One benchmark run: fine-tune the reference U-Net on n tiles, validate every epoch, test at the end."""
+"""One benchmark run: fine-tune the reference U-Net on n tiles or cubes, validate every epoch, test at the end."""
 from __future__ import annotations
 
 import math
@@ -10,53 +10,15 @@ import torch
 import torch.nn.functional as F
 
 from ..encoders.memory import module_channels_last, to_channels_last
+from ..errors import WarmstartError
 from .data import Split
+from .evaluate import evaluate, network_dims, predict_slice, units
+from .feeds import cube_batch, cube_plan, patch_plan, tile_batch
 from .measures import measurement_errors
 from .settings import BenchSettings
-from .stats import curve_area, dice_counts, dice_from_counts, epochs_to_reach
+from .stats import curve_area, epochs_to_reach
 
 __all__ = ["patch_plan", "fine_tune", "predict_slice"]
-
-
-def patch_plan(split: Split, n_tiles: int, s: BenchSettings, seed: int) -> np.ndarray:
-    """Every step's patches, fixed by (seed, n_tiles) alone, so every contender sees the same ones.
-
-    Returns
-    -------
-    (steps, batch, 6) int64: tile index, top, left (in the tile), vertical flip, horizontal
-    flip, quarter turns.
-    """
-    rng = np.random.default_rng([seed, n_tiles, 7919])
-    steps, b = s.total_steps, s.batch_size
-    out = np.zeros((steps, b, 6), dtype=np.int64)
-    out[..., 0] = rng.integers(n_tiles, size=(steps, b))
-    for k in range(n_tiles):
-        _, _, _, _, h, w = split.tiles[k]
-        p = min(s.patch_size, h, w)
-        sel = out[..., 0] == k
-        out[..., 1][sel] = rng.integers(h - p + 1, size=int(sel.sum()))
-        out[..., 2][sel] = rng.integers(w - p + 1, size=int(sel.sum()))
-    out[..., 3:5] = rng.integers(2, size=(steps, b, 2))
-    out[..., 5] = rng.integers(4, size=(steps, b))
-    return out
-
-
-def _batch(images: Sequence[np.ndarray], labels: Sequence[np.ndarray], split: Split, plan: np.ndarray,
-           patch: int) -> tuple[torch.Tensor, torch.Tensor]:
-    xs, ys = [], []
-    for f, top, left, fv, fh, turns in plan:
-        i, z, y, x, h, w = split.tiles[int(f)]
-        p = min(patch, h, w)
-        img = images[i][z, y + top:y + top + p, x + left:x + left + p]
-        lab = labels[i][z, y + top:y + top + p, x + left:x + left + p]
-        if fv:
-            img, lab = img[::-1], lab[::-1]
-        if fh:
-            img, lab = img[:, ::-1], lab[:, ::-1]
-        img, lab = np.rot90(img, int(turns)), np.rot90(lab, int(turns))
-        xs.append(np.ascontiguousarray(img))
-        ys.append(np.ascontiguousarray(lab))
-    return torch.from_numpy(np.stack(xs)[:, None].astype(np.float32)), torch.from_numpy(np.stack(ys))
 
 
 def _loss(logits: torch.Tensor, target: torch.Tensor, classes: int, ignore: int | None) -> torch.Tensor:
@@ -73,35 +35,12 @@ def _loss(logits: torch.Tensor, target: torch.Tensor, classes: int, ignore: int 
     return ce + (1 - dice.mean())
 
 
-@torch.no_grad()
-def predict_slice(model: torch.nn.Module, image: np.ndarray, device: torch.device) -> np.ndarray:
-    """Class map of one whole slice (Y, X)."""
-    x = torch.from_numpy(np.ascontiguousarray(image, dtype=np.float32))[None, None].to(device)
-    return model(x).argmax(1)[0].cpu().numpy()
-
-
-def _evaluate(model: torch.nn.Module, images: Sequence[np.ndarray], labels: Sequence[np.ndarray],
-              slices: Sequence[tuple[int, int]], classes: int, ignore: int | None, device: torch.device,
-              predictions: list[np.ndarray] | None = None) -> np.ndarray:
-    """Dice per class pooled over ``slices``; the predicted slices are appended to ``predictions``."""
-    was = model.training
-    model.eval()
-    counts = np.zeros((classes, 3), dtype=np.int64)
-    for i, z in slices:
-        pred = predict_slice(model, images[i][z], device)
-        counts += dice_counts(pred, labels[i][z], classes, ignore)
-        if predictions is not None:
-            predictions.append(pred.astype(np.uint8))
-    model.train(was)
-    return dice_from_counts(counts)
-
-
 def _foreground_mean(d: np.ndarray) -> float:
     return float(np.mean(d[1:])) if len(d) > 1 else float(d[0])
 
 
 def fine_tune(make_model: Callable[[], torch.nn.Module], images: Sequence[np.ndarray], labels: Sequence[np.ndarray],
-              split: Split, n_tiles: int, seed: int, classes: int, s: BenchSettings, device: torch.device,
+              split: Split, n: int, seed: int, classes: int, s: BenchSettings, device: torch.device,
               keep_predictions: int = 0) -> dict[str, Any]:
     """Fine-tune one network and measure it.
 
@@ -112,21 +51,28 @@ def fine_tune(make_model: Callable[[], torch.nn.Module], images: Sequence[np.nda
         same for every contender).
     images, labels : sequences of (Z, Y, X) arrays
         Prepared (normalized) images of this contender and their labels.
-    split, n_tiles, seed, classes, s, device
+    split, seed, classes, s, device
+    n : int
+        Training-set size: tiles, or cubes (a 2-D network then trains on the slices of ``n`` cubes).
     keep_predictions : int
-        Also return the predictions of this many test slices (for the report's montage).
+        Also return the predictions of this many test slices (for the report's montage; the
+        middle slice of each test slab with the cubes split).
 
     Returns
     -------
     dict
         ``val_dice`` per epoch, ``early_dice`` (validation after ``early_steps`` steps),
-        ``test_dice`` (mean foreground), ``test_dice_per_class``, ``curve_area``, ``epochs_to_threshold``,
-        ``seconds``, ``measures`` (per class and quantity, the truth's and the prediction's value on
-        every test slice and their mean absolute and relative errors: :mod:`.measures`) and
-        optionally ``predictions``.
+        ``test_dice`` (mean foreground), ``test_dice_per_class``, ``test_dice_per_volume`` (mean
+        foreground Dice of each labelled volume's test voxels), ``curve_area``,
+        ``epochs_to_threshold``, ``seconds``, ``measures`` (per class and quantity, the truth's
+        and the prediction's value on every test slice, or slab with the cubes split, and their
+        mean absolute and relative errors: :mod:`.measures`) and optionally ``predictions``.
     """
     torch.manual_seed(seed)
     model = make_model().to(device)
+    dims = network_dims(model)
+    if dims == 3 and split.kind != "cubes":
+        raise WarmstartError("a 3-D network trains on cubes: set bench.training_set = \"cubes\" (or \"auto\")")
     if s.channels_last:
         module_channels_last(model)
     # Batch-norm statistics: a plain average over the fine-tuning batches (momentum None), from
@@ -144,7 +90,19 @@ def fine_tune(make_model: Callable[[], torch.nn.Module], images: Sequence[np.nda
                             weight_decay=s.weight_decay)
     total = s.total_steps
     sched = torch.optim.lr_scheduler.LambdaLR(opt, lambda k: 0.5 * (1 + math.cos(math.pi * min(k, total) / total)))
-    plan = patch_plan(split, n_tiles, s, seed)
+    if dims == 3:
+        plan = cube_plan(split, n, s, seed)
+
+        def batch(step: int) -> tuple[torch.Tensor, torch.Tensor]:
+            return cube_batch(images, labels, split, plan[step], s)
+    else:
+        plan = patch_plan(split, split.n_tiles(n), s, seed)
+
+        def batch(step: int) -> tuple[torch.Tensor, torch.Tensor]:
+            return tile_batch(images, labels, split, plan[step], s.patch_size)
+
+    def val_dice() -> float:
+        return _foreground_mean(evaluate(model, images, labels, split, "val", classes, s, device))
     t0 = time.perf_counter()
     val_curve: list[float] = []
     early = None
@@ -155,7 +113,7 @@ def fine_tune(make_model: Callable[[], torch.nn.Module], images: Sequence[np.nda
             p.requires_grad_(not frozen)
         for k in range(s.steps_per_epoch):
             step = epoch * s.steps_per_epoch + k
-            x, y = _batch(images, labels, split, plan[step], s.patch_size)
+            x, y = batch(step)
             x = x.to(device)
             loss = _loss(model(to_channels_last(x) if s.channels_last else x), y.to(device), classes, s.ignore_label)
             opt.zero_grad(set_to_none=True)
@@ -163,18 +121,34 @@ def fine_tune(make_model: Callable[[], torch.nn.Module], images: Sequence[np.nda
             opt.step()
             sched.step()
             if step + 1 == s.early_steps:
-                early = _foreground_mean(_evaluate(model, images, labels, split.val, classes, s.ignore_label, device))
-        val_curve.append(_foreground_mean(_evaluate(model, images, labels, split.val, classes, s.ignore_label, device)))
+                early = val_dice()
+        val_curve.append(val_dice())
     test_preds: list[np.ndarray] = []
-    test = _evaluate(model, images, labels, split.test, classes, s.ignore_label, device, test_preds)
-    measures = measurement_errors(test_preds, [labels[i][z] for i, z in split.test], classes, s.ignore_label)
+    test = evaluate(model, images, labels, split, "test", classes, s, device, test_preds)
+    test_units = units(split, "test")
+    truths = [labels[i][z0:z1] if split.kind == "cubes" else labels[i][z0] for i, z0, z1 in test_units]
+    measures = measurement_errors(test_preds, truths, classes, s.ignore_label)
     out: dict[str, Any] = {
         "val_dice": val_curve, "early_dice": early if early is not None else val_curve[0],
-        "test_dice": _foreground_mean(test), "test_dice_per_class": test.tolist(), "curve_area": curve_area(val_curve),
+        "test_dice": _foreground_mean(test), "test_dice_per_class": test.tolist(),
+        "test_dice_per_volume": _per_volume(test_preds, truths, test_units, classes, s.ignore_label),
+        "curve_area": curve_area(val_curve),
         "epochs_to_threshold": epochs_to_reach(val_curve, s.dice_threshold),
         "final_loss": float(loss.detach()), "seconds": round(time.perf_counter() - t0, 2),
         "measures": measures,
     }
     if keep_predictions:
-        out["predictions"] = test_preds[:keep_predictions]
+        shown = test_preds[:keep_predictions]
+        out["predictions"] = [p[(len(p) - 1) // 2] for p in shown] if split.kind == "cubes" else shown
     return out
+
+
+def _per_volume(preds: Sequence[np.ndarray], truths: Sequence[np.ndarray], test_units: Sequence[tuple[int, int, int]],
+                classes: int, ignore: int | None) -> dict[str, float]:
+    """Mean foreground Dice of each labelled volume's test voxels (keyed by the pair's index)."""
+    from .stats import dice_counts, dice_from_counts
+
+    counts: dict[int, np.ndarray] = {}
+    for p, t, (i, _, _) in zip(preds, truths, test_units):
+        counts[i] = counts.get(i, np.zeros((classes, 3), dtype=np.int64)) + dice_counts(p, t, classes, ignore)
+    return {str(i): _foreground_mean(dice_from_counts(c)) for i, c in sorted(counts.items())}
