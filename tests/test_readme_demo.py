@@ -117,6 +117,40 @@ def test_demo_runs_every_stage_and_reuses_them(tmp_path):
         run_demo(tmp_path / "demo", quick=True, progress=False, echo=lines.append)
 
 
+TINY_3D = ("corpus.sampling.patch_size=16", "corpus.sampling.stride=16", "corpus.workers=1",
+           "pretrain.max_steps=2", "pretrain.batch_size=8", "pretrain.checkpoint_every=1",
+           "bench.sizes=[1, 2]", "bench.replicates=2", "bench.epochs=1", "bench.steps_per_epoch=2",
+           "bench.cube_size=16", "bench.cube_patch_size=16", "bench.patch_size=16", "bench.region_slices=6",
+           "bench.early_steps=1")
+
+
+def test_the_3d_demo_exports_for_nnunet_and_benches_3d_against_2d(tmp_path):
+    import torch
+
+    from warmstart.demo.run import DemoPlan, run_demo
+    from warmstart.export.file import read_manifest
+
+    plan = DemoPlan(1, (16, 48, 48), 3, (32, 48, 48), "demo-3d-quick", TINY_3D, recipe_2d="demo-quick")
+    lines: list[str] = []
+    first = run_demo(tmp_path / "demo", plan=plan, progress=False, echo=lines.append)
+    text = "\n".join(lines)
+    m3, m2 = read_manifest(first["encoder_3d"]), read_manifest(first["encoder"])
+    assert m3["input"]["spatial_dims"] == 3 and m3["encoder"]["spec"]["name"] == "nnunet"
+    assert m2["input"].get("spatial_dims", 2) == 2
+    # the checkpoint nnU-Net's loader reads: network_weights, loadable without unpickling code
+    ckpt = torch.load(first["nnunet"], map_location="cpu", weights_only=True)
+    assert any(k.startswith("encoder.") for k in ckpt["network_weights"])
+    bench = json.loads(Path(first["reports"]["bench_md"]).with_suffix(".json").read_text())
+    dims = sorted(int(c["spec"]["params"].get("spatial_dims", 2)) for c in bench["contenders"])
+    assert bench["unit"] == "cube" and dims == [2, 2, 3, 3] and len(bench["runs"]) == 4 * 2 * 2
+    assert "training cube" in text and "(3-D)" in text and "nnU-Net" in text and "says nothing about which wins" in text
+    # rerun: every stage reused (archive, two corpora, two pretraining runs, two exports, the nnU-Net file)
+    lines.clear()
+    again = run_demo(tmp_path / "demo", plan=plan, progress=False, echo=lines.append)
+    assert sum("already" in line for line in lines) >= 8 and again["bench"] == first["bench"]
+    assert again["stage_seconds"].keys() <= {"scan", "benchmark"}
+
+
 @pytest.mark.slow
 def test_demo_quick_from_the_command_line(tmp_path):
     proc = subprocess.run([sys.executable, "-m", "warmstart", "-q", "demo", "--quick", "--output", str(tmp_path), "--json"],
