@@ -163,8 +163,10 @@ def build_parser() -> argparse.ArgumentParser:
 
     bench = sub.add_parser("bench", help="few-shot segmentation: random init vs warm starts on labelled data",
                            description="Fine-tune the reference U-Net from random weights and from each encoder file "
-                                       "on 1, 4, 16 labelled tiles (a tile: a square labelled crop of one slice), "
-                                       "with replicates; report Dice with 95 % "
+                                       "on 1, 4, 16 labelled tiles (a tile: a square labelled crop of one slice) or, "
+                                       "when any file is 3-D, labelled cubes (sub-volumes; 2-D files then train on the "
+                                       "cubes' slices and every contender is tested on the same slabs), with "
+                                       "replicates; report Dice with 95 % "
                                        "intervals, paired differences and their significance. Rerun to resume.")
     bench.add_argument("labels", metavar="LABELLED_SET",
                        help="the labelled set: a folder with images/ and labels/, or a TOML file listing image/label pairs")
@@ -172,9 +174,10 @@ def build_parser() -> argparse.ArgumentParser:
                        help="an exported encoder file to compare with random initialization (repeatable)")
     _deprecated_alias(bench, "--encoder", "--encoder-file", dest="encoder_files", action="append")
     bench.add_argument("-o", "--output", required=True, metavar="OUT", help="report folder")
-    _add_recipe_options(bench, "bench-cpu, bench-gpu", "bench.lr=3e-4", read_options=False)
+    _add_recipe_options(bench, "bench-cpu, bench-gpu, bench-cpu-3d, bench-gpu-3d", "bench.lr=3e-4", read_options=False)
     g = bench.add_argument_group("common settings (shortcuts for --set)")
-    g.add_argument("--sizes", type=_int_list, metavar="N,N,...", help="training-set sizes in tiles, e.g. 1,4,16")
+    g.add_argument("--sizes", type=_int_list, metavar="N,N,...", help="training-set sizes in tiles or cubes, e.g. 1,4,16")
+    g.add_argument("--cube-size", type=int, metavar="VOXELS", help="side of the training cubes (bench.cube_size)")
     g.add_argument("--replicates", type=int, metavar="N", help="fine-tuning runs per contender and size (bench.replicates)")
     _deprecated_alias(g, "--seeds", "--replicates", dest="replicates", type=int)
     g.add_argument("--threads", type=int, metavar="N",
@@ -476,7 +479,8 @@ def cmd_inspect(args: argparse.Namespace) -> int:
     return 0
 
 
-_BENCH_SHORTCUTS = {"sizes": "sizes", "replicates": "replicates", "epochs": "epochs", "threads": "threads"}
+_BENCH_SHORTCUTS = {"sizes": "sizes", "replicates": "replicates", "epochs": "epochs", "threads": "threads",
+                    "cube_size": "cube_size"}
 
 
 def cmd_bench(args: argparse.Namespace) -> int:
