@@ -178,15 +178,18 @@ def best_method(result: dict[str, Any], among: set[str] | None = None) -> tuple[
         rows = [result["summary"][n][cid] for n in sizes]
         if not rows[0].get("vs_random") or (among is not None and cid not in among):
             continue
-        target = bool(rows[0]["vs_random"]["test_dice"].get("significant"))
-        wins = sum(bool(r["vs_random"][f].get("significant")) for r in rows for f in ("test_dice", "early_dice", "curve_area"))
+        first = rows[0]["vs_random"]["test_dice"]
+        target = bool(first.get("significant")) and first["mean"] > 0
+        wins = sum(bool(r["vs_random"][f].get("significant")) and r["vs_random"][f]["mean"] > 0
+                   for r in rows for f in ("test_dice", "early_dice", "curve_area"))
         gain = sum(r["vs_random"]["test_dice"]["mean"] for r in rows) / len(rows)
         stats[cid] = (target, wins, gain)
     cid = max(stats, key=lambda k: stats[k])
     target, wins, gain = stats[cid]
-    why = (f"{'reaches' if target else 'no contender reaches'} a final-Dice gain at {sizes[0]} tile(s) whose 95 % "
-           f"interval excludes zero; {wins} of {3 * len(sizes)} paired comparisons exclude zero; mean final-Dice gain "
-           f"{gain:+.3f}")
+    unit = result.get("unit", "tile")
+    why = (f"{'reaches' if target else 'no contender reaches'} a final-Dice gain at {sizes[0]} {unit}(s) whose 95 % "
+           f"interval lies above zero; {wins} of {3 * len(sizes)} paired comparisons are gains whose interval excludes "
+           f"zero; mean final-Dice gain {gain:+.3f}")
     return cid, why
 
 
