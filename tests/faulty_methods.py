@@ -9,6 +9,7 @@ from __future__ import annotations
 import torch
 
 from warmstart.pretrain.methods import register_method
+from warmstart.pretrain.methods.restore import Restore
 from warmstart.pretrain.methods.simclr import SimCLR
 
 
@@ -27,6 +28,18 @@ class NanAfter3(SimCLR):
 @register_method("test_collapsed")
 class Collapsed(SimCLR):
     """A deliberately collapsed encoder: every weight zero and frozen, so every patch embeds alike."""
+
+    def __init__(self, encoder, **kw):
+        super().__init__(encoder, **kw)
+        for p in self.encoder.parameters():
+            torch.nn.init.zeros_(p)
+            p.requires_grad_(False)
+
+
+@register_method("test_collapsed_restore")
+class CollapsedRestore(Restore):
+    """Restoration with the same zeroed, frozen encoder: its embedding spread is as low, but the
+    method does not learn an embedding, so the loop must not call that collapse."""
 
     def __init__(self, encoder, **kw):
         super().__init__(encoder, **kw)

@@ -126,6 +126,13 @@ def test_collapse_warning_for_a_collapsed_encoder(corpus, tmp_path):
     assert res.summary["final_spread"] < 0.1
     healthy = pretrain(corpus, tmp_path / "ok", PretrainSettings(max_steps=5, **FAST), progress=False)
     assert healthy.summary["final_spread"] > 0.3
+    # Restoration does not learn an embedding: the same low spread is logged but not called collapse.
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        res = pretrain(corpus, tmp_path / "restore", PretrainSettings(epochs=1, method="test_collapsed_restore", **FAST),
+                       progress=False)
+    assert res.summary["final_spread"] < 0.1
+    assert not any("representation collapse" in str(w.message) for w in caught)
 
 
 def test_mixed_precision_runs_on_cpu(corpus, tmp_path, monkeypatch):

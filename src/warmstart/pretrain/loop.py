@@ -131,7 +131,7 @@ class PretrainModule(pl.LightningModule):
             acc = knn_accuracy(emb, y)
             self.knn_history.append(acc)
             self.log("knn", acc, on_step=False, on_epoch=True, prog_bar=True)
-        if self.spreads and float(np.mean(self.spreads)) < self.s.collapse_threshold:
+        if self.spreads and self.method.learns_embedding and float(np.mean(self.spreads)) < self.s.collapse_threshold:
             warnings.warn(
                 f"representation collapse: embedding spread {np.mean(self.spreads):.3f} (std of normalized "
                 f"embeddings x sqrt(D)) is below {self.s.collapse_threshold} in epoch {self.current_epoch}; "

@@ -73,6 +73,9 @@ class Method(nn.Module):
 
     method_name = "base"
     trains_decoder = False  # True where exported_decoder() returns a trained U-Net decoder
+    # False where the objective does not shape the pooled embedding (restoration, masked
+    # modelling): its spread says nothing about collapse, so the loop does not warn on it.
+    learns_embedding = True
 
     def __init__(self, encoder: nn.Module) -> None:
         super().__init__()

@@ -58,6 +58,7 @@ class MaskedModelling(Method):
     """Parameters: ``mask_ratio`` (share of blocks hidden), ``decoder_norm``."""
 
     trains_decoder = True
+    learns_embedding = False  # reconstruction only: no collapse warning
 
     def __init__(self, encoder: nn.Module, mask_ratio: float = 0.6, decoder_norm: str = "batch") -> None:
         super().__init__(encoder)

@@ -31,6 +31,7 @@ class Restore(Method):
     ``noise_sigma``)."""
 
     trains_decoder = True
+    learns_embedding = False  # reconstruction only: no collapse warning
 
     def __init__(self, encoder: nn.Module, decoder_norm: str = "batch", nonlinear_prob: float = 0.9,
                  shuffle_prob: float = 0.5, shuffle_block: int = 4, shuffle_fraction: float = 0.3,
