@@ -56,6 +56,8 @@ def test_readme_warmstart_commands_run(tmp_path):
 
     cubes = read_manifest(tmp_path / "cubes-encoder.safetensors")  # the 3-D section's export
     assert cubes["input"]["spatial_dims"] == 3 and cubes["encoder"]["spec"]["params"]["spatial_dims"] == 3
+    b3 = json.loads((tmp_path / "bench3d" / "bench.json").read_text())  # the 3-D bench: cubes, 2-D beside 3-D
+    assert b3["unit"] == "cube" and len(b3["contenders"]) == 4 and len(b3["runs"]) == 4 * 2 * 2
 
 
 TINY_DEMO = ("corpus.sampling.patch_size=32", "corpus.sampling.stride=16", "corpus.workers=1",
@@ -144,6 +146,9 @@ def test_the_3d_demo_exports_for_nnunet_and_benches_3d_against_2d(tmp_path):
     dims = sorted(int(c["spec"]["params"].get("spatial_dims", 2)) for c in bench["contenders"])
     assert bench["unit"] == "cube" and dims == [2, 2, 3, 3] and len(bench["runs"]) == 4 * 2 * 2
     assert "training cube" in text and "(3-D)" in text and "nnU-Net" in text and "says nothing about which wins" in text
+    # restoration trained nnU-Net's own decoder: the bench says it uses the encoder alone
+    assert "nnunet's own, not the benchmark's reference U-Net decoder: only its encoder is used" in \
+        Path(first["reports"]["bench_md"]).read_text()
     # rerun: every stage reused (archive, two corpora, two pretraining runs, two exports, the nnU-Net file)
     lines.clear()
     again = run_demo(tmp_path / "demo", plan=plan, progress=False, echo=lines.append)

@@ -87,10 +87,15 @@ def _contenders(encoders: Sequence[str | os.PathLike[str]], s: BenchSettings, pa
         known = {p["sha256"] for p in m["corpus"]["provenance"]}
         parts = list(m.get("parts", ["encoder"]))
         notes = []
-        if "decoder" in parts and (m.get("decoder") or {}).get("norm") != s.decoder_norm:
+        decoder = m.get("decoder") or {}
+        if "decoder" in parts and decoder.get("kind", "unet") != "unet":
+            parts = ["encoder"]
+            notes.append(f"the file's decoder is {decoder['kind']}'s own, not the benchmark's reference U-Net decoder: "
+                         "only its encoder is used")
+        elif "decoder" in parts and decoder.get("norm") != s.decoder_norm:
             parts = ["encoder"]
             notes.append(f"bench.decoder_norm {s.decoder_norm!r} is not the file's decoder norm "
-                         f"{m['decoder']['norm']!r}: its decoder is not used")
+                         f"{decoder['norm']!r}: its decoder is not used")
         label = f"warm start {Path(f).name}" + (" (encoder + decoder)" if "decoder" in parts else "")
         out.append(Contender(cid, label, m["encoder"]["spec"], f, randoms[_spec_key(m["encoder"]["spec"])],
                              f"{intensity_line(m)}, then (x - {st['mean']:.4g}) / {st['std']:.4g} (from the file)",
