@@ -225,7 +225,9 @@ def run_demo(out: str | os.PathLike[str] | None = None, *, quick: bool = False, 
     echo(f"         benchmark {reports['bench_html']} (and {reports['bench_md']})")
     echo(f"demo finished in {seconds:.0f} s")
     return {**{k: str(v) for k, v in paths.items()}, "reports": reports, "scan": scan.to_dict(), "build": build,
-            "pretrain": summary, "encoder_manifest": manifest, **({"pretrain_2d": summary_2d, "build_2d": built[1]} if three else {}), "bench": bench["summary"], "seconds": round(seconds, 1),
+            "pretrain": summary, "encoder_manifest": manifest,
+            **({"pretrain_2d": summary_2d, "build_2d": built[1]} if three else {}),
+            "bench": bench["summary"], "seconds": round(seconds, 1),
             "stage_seconds": stage_seconds}
 
 
