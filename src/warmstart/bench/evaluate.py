@@ -58,9 +58,11 @@ def predict_unit(model: torch.nn.Module, image: np.ndarray, unit: tuple[int, int
 
 def evaluate(model: torch.nn.Module, images: Sequence[np.ndarray], labels: Sequence[np.ndarray], split: Split,
              which: str, classes: int, s: BenchSettings, device: torch.device,
-             predictions: list[np.ndarray] | None = None) -> np.ndarray:
+             predictions: list[np.ndarray] | None = None,
+             by_volume: dict[int, np.ndarray] | None = None) -> np.ndarray:
     """Dice per class pooled over the ``which`` set; each unit's prediction is appended to
-    ``predictions`` (a slice (Y, X) for the tiles split, a slab (z, Y, X) for the cubes split)."""
+    ``predictions`` (a slice (Y, X) for the tiles split, a slab (z, Y, X) for the cubes split),
+    and its Dice counts are added to ``by_volume[pair]`` (see :func:`.stats.dice_counts`)."""
     was = model.training
     model.eval()
     dims = network_dims(model)
@@ -68,7 +70,10 @@ def evaluate(model: torch.nn.Module, images: Sequence[np.ndarray], labels: Seque
     for unit in units(split, which):
         i, z0, z1 = unit
         pred = predict_unit(model, images[i], unit, dims, s, device)
-        counts += dice_counts(pred, labels[i][z0:z1], classes, s.ignore_label)
+        unit_counts = dice_counts(pred, labels[i][z0:z1], classes, s.ignore_label)
+        counts += unit_counts
+        if by_volume is not None:
+            by_volume[i] = by_volume.get(i, 0) + unit_counts
         if predictions is not None:
             predictions.append((pred[0] if split.kind == "tiles" else pred).astype(np.uint8))
     model.train(was)

@@ -16,7 +16,7 @@ from .evaluate import evaluate, network_dims, predict_slice, units
 from .feeds import cube_batch, cube_plan, patch_plan, tile_batch
 from .measures import measurement_errors
 from .settings import BenchSettings
-from .stats import curve_area, epochs_to_reach
+from .stats import curve_area, dice_from_counts, epochs_to_reach
 
 __all__ = ["patch_plan", "fine_tune", "predict_slice"]
 
@@ -124,14 +124,15 @@ def fine_tune(make_model: Callable[[], torch.nn.Module], images: Sequence[np.nda
                 early = val_dice()
         val_curve.append(val_dice())
     test_preds: list[np.ndarray] = []
-    test = evaluate(model, images, labels, split, "test", classes, s, device, test_preds)
+    per_volume: dict[int, np.ndarray] = {}
+    test = evaluate(model, images, labels, split, "test", classes, s, device, test_preds, per_volume)
     test_units = units(split, "test")
     truths = [labels[i][z0:z1] if split.kind == "cubes" else labels[i][z0] for i, z0, z1 in test_units]
     measures = measurement_errors(test_preds, truths, classes, s.ignore_label)
     out: dict[str, Any] = {
         "val_dice": val_curve, "early_dice": early if early is not None else val_curve[0],
         "test_dice": _foreground_mean(test), "test_dice_per_class": test.tolist(),
-        "test_dice_per_volume": _per_volume(test_preds, truths, test_units, classes, s.ignore_label),
+        "test_dice_per_volume": {str(i): _foreground_mean(dice_from_counts(c)) for i, c in sorted(per_volume.items())},
         "curve_area": curve_area(val_curve),
         "epochs_to_threshold": epochs_to_reach(val_curve, s.dice_threshold),
         "final_loss": float(loss.detach()), "seconds": round(time.perf_counter() - t0, 2),
@@ -142,13 +143,3 @@ def fine_tune(make_model: Callable[[], torch.nn.Module], images: Sequence[np.nda
         out["predictions"] = [p[(len(p) - 1) // 2] for p in shown] if split.kind == "cubes" else shown
     return out
 
-
-def _per_volume(preds: Sequence[np.ndarray], truths: Sequence[np.ndarray], test_units: Sequence[tuple[int, int, int]],
-                classes: int, ignore: int | None) -> dict[str, float]:
-    """Mean foreground Dice of each labelled volume's test voxels (keyed by the pair's index)."""
-    from .stats import dice_counts, dice_from_counts
-
-    counts: dict[int, np.ndarray] = {}
-    for p, t, (i, _, _) in zip(preds, truths, test_units):
-        counts[i] = counts.get(i, np.zeros((classes, 3), dtype=np.int64)) + dice_counts(p, t, classes, ignore)
-    return {str(i): _foreground_mean(dice_from_counts(c)) for i, c in sorted(counts.items())}
