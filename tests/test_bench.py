@@ -220,6 +220,22 @@ def test_bench_end_to_end_report_agrees_with_runs_and_resumes(labelled, tmp_path
     rec["auc"] = rec.pop("curve_area")
     one.write_text(json.dumps(rec))
     assert run_bench(labelled, [enc], tmp_path / "out", s, progress=False)["summary"] == res["summary"]
+    # The file is exported again with other weights: its runs are made again, random init's are
+    # reused, and the old records are kept under runs/superseded/.
+    from warmstart.export.file import read_encoder_file, write_encoder_file
+
+    manifest, arrays = read_encoder_file(enc)
+    assert {c["id"]: c["file_digest"] for c in res["contenders"]} == {"random": None, "helpful": manifest["digest"]["sha256"]}
+    write_encoder_file(enc, {k: (a * 1.01 if a.dtype.kind == "f" else a) for k, a in arrays.items()}, manifest)
+    stamp = {p.name: p.stat().st_mtime_ns for p in (tmp_path / "out" / "runs").glob("*.json")}
+    with pytest.warns(UserWarning, match=r"6 saved run\(s\) were made otherwise \(the contender"):
+        changed = run_bench(labelled, [enc], tmp_path / "out", s, progress=False)
+    now = {p.name: p.stat().st_mtime_ns for p in (tmp_path / "out" / "runs").glob("*.json")}
+    assert {k for k in now if now[k] != stamp[k]} == {k for k in now if k.startswith("helpful")} and len(now) == 12
+    kept = list((tmp_path / "out" / "runs" / "superseded").glob("*/helpful-n*-s*"))
+    assert sorted(p.name for p in kept if p.suffix == ".json") == sorted(k for k in stamp if k.startswith("helpful"))
+    assert any(p.name == "helpful-n1-s0-pred.npz" for p in kept)  # its predictions go with it
+    assert [r for r in changed["runs"] if r["contender"] == "random"] == [r for r in runs if r["contender"] == "random"]
     assert "Curve area: the mean validation Dice over the epochs" in md and "(reached) counts those replicates" in md
 
 
@@ -288,3 +304,38 @@ def test_the_html_report_in_a_real_browser(report, tmp_path):
     assert "class 0 (background)" in dom and "class 1" in dom  # the legend names every class
     px = np.asarray(Image.open(shot).convert("L"), dtype=float)
     assert px.std() > 10 and (px < 128).mean() > 0.005  # text and figures, not a blank page
+
+def test_rerun_reuses_only_the_runs_made_with_the_same_settings(labelled, tmp_path):
+    from warmstart.bench.run import run_bench
+
+    out = tmp_path / "out"
+    runs_dir = out / "runs"
+    s = BenchSettings(sizes=[1], replicates=2, tile_size=32, patch_size=32, epochs=1, steps_per_epoch=2, batch_size=2,
+                      val_slices=2, test_slices=2, early_steps=1, threads=2)
+    first = run_bench(labelled, [], out, s, progress=False)
+    assert all("made_with" not in r for r in first["runs"])  # kept in the records, not in bench.json
+    stamp = {p.name: p.stat().st_mtime_ns for p in runs_dir.glob("*.json")}
+    assert json.loads((runs_dir / "random-n1-s0.json").read_text())["made_with"]["settings"]["epochs"] == 1
+    # More replicates and another thread count: the two saved runs are reused, one run is added.
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        more = run_bench(labelled, [], out, BenchSettings(**{**s.to_dict(), "replicates": 3, "threads": 1}), progress=False)
+    assert {p.name: p.stat().st_mtime_ns for p in runs_dir.glob("*.json") if p.name in stamp} == stamp
+    assert len(more["runs"]) == 3 and more["runs"][:2] == first["runs"]
+    # Another fine-tuning length: every saved run is made again; the old records are kept aside.
+    longer = BenchSettings(**{**s.to_dict(), "replicates": 3, "epochs": 2})
+    with pytest.warns(UserWarning, match=r"3 saved run\(s\) were made otherwise \(epochs 1 -> 2\)"):
+        run_bench(labelled, [], out, longer, progress=False)
+    (aside,) = (runs_dir / "superseded").iterdir()
+    assert sorted(p.name for p in aside.glob("*.json")) == ["random-n1-s0.json", "random-n1-s1.json", "random-n1-s2.json"]
+    assert json.loads((aside / "random-n1-s0.json").read_text())["made_with"]["settings"]["epochs"] == 1
+    assert json.loads((runs_dir / "random-n1-s0.json").read_text())["made_with"]["settings"]["epochs"] == 2
+    # A record from a version that kept no such note, and a damaged one: made again, no traceback.
+    rec = json.loads((runs_dir / "random-n1-s0.json").read_text())
+    rec.pop("made_with")
+    (runs_dir / "random-n1-s0.json").write_text(json.dumps(rec))
+    (runs_dir / "random-n1-s1.json").write_text("{\"contender\": ")
+    with pytest.warns(UserWarning, match=r"2 saved run\(s\) were made otherwise \(not recorded .*; unreadable"):
+        again = run_bench(labelled, [], out, longer, progress=False)
+    assert len(list((runs_dir / "superseded").iterdir())) == 2 and len(again["runs"]) == 3
+    assert all("made_with" in json.loads(p.read_text()) for p in runs_dir.glob("*.json"))

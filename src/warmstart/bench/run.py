@@ -20,6 +20,7 @@ from .data import load_pairs, make_split, n_classes
 from .labels_saved import headline
 from .measures import errors_by_key
 from .ranking import recommendation
+from .run_records import differences, made_with, set_aside
 from .settings import BenchSettings
 from .stats import bounded_ci, epochs_to_reach, mean_ci, paired_difference
 
@@ -43,6 +44,7 @@ class Contender:
     parts: list[str] = field(default_factory=lambda: ["encoder"])  # what the file warm-starts
     leakage: list[str] = field(default_factory=list)
     mismatch: list[str] = field(default_factory=list)
+    file_digest: str | None = None  # the file's digest.sha256 (tensors and manifest)
 
     def to_dict(self) -> dict[str, Any]:
         return dict(self.__dict__)
@@ -99,7 +101,8 @@ def _contenders(encoders: Sequence[str | os.PathLike[str]], s: BenchSettings, pa
         label = f"warm start {Path(f).name}" + (" (encoder + decoder)" if "decoder" in parts else "")
         out.append(Contender(cid, label, m["encoder"]["spec"], f, randoms[_spec_key(m["encoder"]["spec"])],
                              f"{intensity_line(m)}, then (x - {st['mean']:.4g}) / {st['std']:.4g} (from the file)",
-                             parts=parts, leakage=[p.name for p in pairs if p.sha256 in known], mismatch=notes))
+                             parts=parts, leakage=[p.name for p in pairs if p.sha256 in known], mismatch=notes,
+                             file_digest=(m.get("digest") or {}).get("sha256") or m["tensors"]["sha256"]))
     return out
 
 
@@ -241,14 +244,15 @@ def run_bench(labels: str | os.PathLike[str], encoders: Sequence[str | os.PathLi
     labs = [p.label for p in pairs]
     device = _device(s)
     planned = [(n, seed, c) for n in s.sizes for seed in range(s.replicates) for c in contenders]
+    wanted = {(n, c.id): made_with(c, split, n, s.to_dict(), pairs, classes) for n in s.sizes for c in contenders}
+    reusable = _reusable(out, planned, wanted)
     prepared: dict[str, list[np.ndarray]] = {}
     runs = []
     bar = progress_bar(planned, desc="bench runs", unit="run", disable=not progress)
     for n, seed, c in bar:
         path = out / "runs" / f"{c.id}-n{n}-s{seed}.json"
-        if path.exists():
-            old = json.loads(path.read_text())
-            runs.append({_RENAMED_FIGURES.get(k, k): v for k, v in old.items()})
+        if path in reusable:
+            runs.append(reusable[path])
             continue
         if c.id not in prepared:
             prepared[c.id] = _prepared(c, pairs)
@@ -258,7 +262,7 @@ def run_bench(labels: str | os.PathLike[str], encoders: Sequence[str | os.PathLi
         if preds is not None:
             np.savez_compressed(out / "runs" / f"{c.id}-n{n}-s{seed}-pred.npz", *preds)
         rec = {"contender": c.id, "size": n, "seed": seed, **r}
-        write_json(path, rec)
+        write_json(path, {**rec, "made_with": wanted[(n, c.id)]})
         runs.append(rec)
         bar.set_postfix_str(f"{c.id}, {n} {unit}(s), replicate {seed}: test Dice {r['test_dice']:.3f}")
     for c in contenders:  # mismatch notes also when every run was reused
@@ -276,6 +280,36 @@ def run_bench(labels: str | os.PathLike[str], encoders: Sequence[str | os.PathLi
     result["recommendation"] = recommendation(runs, result["contenders"], list(s.sizes), unit=unit)
     result["report"] = write_report(out, result, pairs)
     return result
+
+
+def _reusable(out: Path, planned: list[tuple[int, int, Contender]],
+              wanted: dict[tuple[int, str], dict[str, Any]]) -> dict[Path, dict[str, Any]]:
+    """The saved run records a rerun reuses (by path, ``made_with`` removed); the others of the
+    planned runs are moved to ``runs/superseded/`` (:mod:`.run_records`) with a warning that says
+    what changed."""
+    keep: dict[Path, dict[str, Any]] = {}
+    stale: list[Path] = []
+    changed: dict[str, None] = {}  # ordered set of the reasons, in words
+    for n, seed, c in planned:
+        path = out / "runs" / f"{c.id}-n{n}-s{seed}.json"
+        if not path.exists():
+            continue
+        try:
+            old = json.loads(path.read_text())
+            why = differences(old.pop("made_with", None), wanted[(n, c.id)])
+        except (OSError, ValueError, AttributeError) as e:
+            old, why = {}, [f"unreadable ({e})"]
+        if why:
+            stale += [path, path.with_name(f"{path.stem}-pred.npz")]
+            changed.update(dict.fromkeys(why))
+        else:
+            keep[path] = {_RENAMED_FIGURES.get(k, k): v for k, v in old.items()}
+    if stale:
+        moved = set_aside(stale, out / "runs")
+        records = sum(p.suffix == ".json" for p in stale)
+        warnings.warn(f"{out}: {records} saved run(s) were made otherwise ({'; '.join(changed)}) and are run again; "
+                      f"the old records are kept in {moved}", stacklevel=3)
+    return keep
 
 
 def _one_run(c: Contender, images: list[np.ndarray], labels: list[np.ndarray], split: Any, n: int, seed: int,
