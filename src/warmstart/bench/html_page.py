@@ -38,6 +38,13 @@ def _table(head: Sequence[str], rows: Sequence[Sequence[Any]], caption: str = ""
     return f"<table>{cap}<tr>{''.join(f'<th>{_e(h)}</th>' for h in head)}</tr>{body}</table>"
 
 
+def _section(title: str, note: str, head: Sequence[str], rows: Sequence[Sequence[Any]]) -> str:
+    """A titled table with its note (none: ``""``); nothing when it has no rows."""
+    if not rows:
+        return ""
+    return f"<h2>{_e(title)}</h2>" + (f"<p>{_e(note)}</p>" if note else "") + _table(head, rows)
+
+
 def html_page(result: dict[str, Any], figures: Sequence[tuple[str, str]], intro: str, class_names: Sequence[str]) -> str:
     """The page.
 
@@ -85,21 +92,15 @@ def html_page(result: dict[str, Any], figures: Sequence[tuple[str, str]], intro:
             continue
         parts.append(f"<h2>{_e(title)}</h2><img alt='{_e(title)}' src='data:image/png;base64,{b64}'>")
     parts.append(_per_class(result, labels, class_names))
-    head, rows = volume_table(result)
-    if rows:
-        parts.append("<h2>Test Dice per labelled volume</h2>" + _table(head, rows))
-    head, rows = measure_table(result)
-    if rows:
-        parts.append(f"<h2>Measurement error</h2><p>{_e(measure_note(result))}</p>" + _table(head, rows))
+    parts.append(_section("Test Dice per labelled volume", "", *volume_table(result)))
+    parts.append(_section("Measurement error", measure_note(result), *measure_table(result)))
     pred = next(((t, b) for t, b in figs.items() if t.startswith("Test predictions")), None)
     if pred:
         legend = "".join(f"<span style='background:{CLASS_COLOURS[k % len(CLASS_COLOURS)]}'></span>{_e(name)}"
                          for k, name in enumerate(class_names))
         parts.append(f"<h2>{_e(pred[0])}</h2><p class='legend'>Classes:{legend}</p>"
                      f"<img alt='{_e(pred[0])}' src='data:image/png;base64,{pred[1]}'>")
-    head, rows = pairs_table(result)
-    if rows:
-        parts.append(f"<h2>Every pair of contenders</h2><p>{_e(PAIRS_NOTE)}</p>" + _table(head, rows))
+    parts.append(_section("Every pair of contenders", PAIRS_NOTE, *pairs_table(result)))
     parts.append("<h2>Settings</h2>" + _table(["setting", "value"], [[k, v] for k, v in s.items()]))
     split = result["split"]
     if split.get("kind") == "cubes":

@@ -40,6 +40,14 @@ def verdicts(result: dict[str, Any]) -> list[str]:
     return out
 
 
+def _md_section(title: str, note: str, head: Sequence[str], rows: Sequence[Sequence[str]]) -> list[str]:
+    """A titled markdown table with its note (none: ``""``); no lines when it has no rows."""
+    if not rows:
+        return []
+    return [f"## {title}", "", *([note, ""] if note else []), "| " + " | ".join(head) + " |", "|" + "---|" * len(head),
+            *("| " + " | ".join(r) + " |" for r in rows), ""]
+
+
 def intro(result: dict[str, Any]) -> str:
     """The paragraph that describes the set-up (the same in bench.md and bench.html)."""
     s = result["settings"]
@@ -106,18 +114,9 @@ def markdown(result: dict[str, Any]) -> str:
               f"`bench.dice_threshold` {s['dice_threshold']:g} stays in bench.json), averaged "
               "over the replicates that reached it; (reached) counts those replicates out of all. "
               "`*`: the 95 % interval of the paired difference excludes zero.", "", "## In words", ""] + [f"- {v}" for v in verdicts(result)] + [""]
-    head, rows = volume_table(result)
-    if rows:
-        lines += ["## Test Dice per labelled volume", "", "| " + " | ".join(head) + " |", "|" + "---|" * len(head)] + \
-                 ["| " + " | ".join(r) + " |" for r in rows] + [""]
-    head, rows = measure_table(result)
-    if rows:
-        lines += ["## Measurement error", "", measure_note(result), "", "| " + " | ".join(head) + " |",
-                  "|" + "---|" * len(head)] + ["| " + " | ".join(r) + " |" for r in rows] + [""]
-    head, rows = pairs_table(result)
-    if rows:
-        lines += ["## Every pair of contenders", "", PAIRS_NOTE, "", "| " + " | ".join(head) + " |",
-                  "|" + "---|" * len(head)] + ["| " + " | ".join(r) + " |" for r in rows] + [""]
+    lines += _md_section("Test Dice per labelled volume", "", *volume_table(result))
+    lines += _md_section("Measurement error", measure_note(result), *measure_table(result))
+    lines += _md_section("Every pair of contenders", PAIRS_NOTE, *pairs_table(result))
     lines += ["## Contenders", ""]
     for c in result["contenders"]:
         lines.append(f"- **{c['label']}** (`{c['id']}`): {c['spec']['name']} {c['spec']['params']}; input: {c['normalization']}")

@@ -90,8 +90,7 @@ def sliding_window_logits(model: torch.nn.Module, volume: np.ndarray, window: in
     pad = [(0, max(0, w - n)) for w, n in zip(win, shape)]
     if any(p for _, p in pad):
         vol = np.pad(vol, pad, mode="reflect" if all(n > 1 for n in shape) else "edge")
-    full = vol.shape
-    win = tuple(min(w, n) for w, n in zip(win, full))
+    full = vol.shape  # at least the window along every axis (padded above)
     weight = torch.from_numpy(gaussian_weight(win))
     corners = [(z, y, x) for z in window_starts(full[0], win[0], overlap)
                for y in window_starts(full[1], win[1], overlap) for x in window_starts(full[2], win[2], overlap)]

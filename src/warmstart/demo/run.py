@@ -231,11 +231,16 @@ def run_demo(out: str | os.PathLike[str] | None = None, *, quick: bool = False, 
             "stage_seconds": stage_seconds}
 
 
+def _step(k: int, first: bool) -> str:
+    """``[k/7]`` for a stage's first line, blanks of its width for the second variant's (3-D demo)."""
+    return f"[{k}/7]" if first else "     "
+
+
 def _corpus_stage(archive: Path, corpus: Path, recipe: Any, kind: str, name: str, progress: bool,
                   echo: Callable[[str], Any], timed: Callable[[str], Callable[[], None]], first: bool = True) -> dict[str, Any]:
     from ..corpus.build import build_corpus
 
-    step = "[3/7]" if first else "     "
+    step = _step(3, first)
     if (corpus / "manifest.json").exists():
         echo(f"{step} {kind}corpus already built: {corpus}")
         manifest = json.loads((corpus / "manifest.json").read_text())
@@ -255,7 +260,7 @@ def _pretrain_stage(corpus: Path, run: Path, settings: Any, progress: bool, echo
                     timed: Callable[[str], Callable[[], None]], kind: str = "", first: bool = True) -> dict[str, Any]:
     from ..pretrain.loop import pretrain
 
-    step = "[4/7]" if first else "     "
+    step = _step(4, first)
     if (run / "summary.json").exists():
         echo(f"{step} {kind}pretraining already finished: {run}")
         return json.loads((run / "summary.json").read_text())
@@ -279,13 +284,13 @@ def _export_stage(run: Path, encoder: Path, card: Path, with_decoder: bool, echo
     from ..export.pack import export_encoder
 
     if encoder.exists():
-        echo(f"{'[5/7]' if first else '     '} encoder already exported: {encoder}")
+        echo(f"{_step(5, first)} encoder already exported: {encoder}")
         manifest = read_manifest(encoder)
     else:
         what = "encoder and decoder" if with_decoder else "encoder"
-        echo(f"{'[5/7]' if first else '     '} exporting the {what} with the intensity rule and corpus statistics to {encoder}")
+        echo(f"{_step(5, first)} exporting the {what} with the intensity rule and corpus statistics to {encoder}")
         _, manifest = export_encoder(run, encoder, with_decoder=with_decoder)
-    echo(f"{'[6/7]' if first else '     '} inspecting {encoder.name}")
+    echo(f"{_step(6, first)} inspecting {encoder.name}")
     for line in summary_text(manifest).splitlines():
         echo(f"      {line}")
     card.write_text(model_card(manifest, title=encoder.name))
