@@ -339,3 +339,18 @@ def test_rerun_reuses_only_the_runs_made_with_the_same_settings(labelled, tmp_pa
         again = run_bench(labelled, [], out, longer, progress=False)
     assert len(list((runs_dir / "superseded").iterdir())) == 2 and len(again["runs"]) == 3
     assert all("made_with" in json.loads(p.read_text()) for p in runs_dir.glob("*.json"))
+
+
+def test_the_command_line_says_which_saved_runs_it_makes_again_in_one_warning_line(labelled, tmp_path, capsys):
+    from warmstart.cli import main
+
+    argv = ["-q", "bench", str(labelled), "-o", str(tmp_path / "out"), "--sizes", "1", "--replicates", "1",
+            "--threads", "2", *(x for kv in ("tile_size=32", "patch_size=32", "steps_per_epoch=2", "batch_size=2",
+                                             "val_slices=2", "test_slices=2", "early_steps=1") for x in ("--set", f"bench.{kv}"))]
+    assert main([*argv, "--epochs", "1"]) == 0
+    capsys.readouterr()
+    assert main([*argv, "--epochs", "2"]) == 0
+    err = capsys.readouterr().err
+    lines = [ln for ln in err.splitlines() if "made otherwise" in ln]
+    assert len(lines) == 1 and lines[0].startswith("warning: ") and "(epochs 1 -> 2)" in lines[0]
+    assert ".py:" not in err and "Traceback" not in err  # no Python file, line or source shown to the user

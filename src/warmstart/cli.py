@@ -296,6 +296,12 @@ def cmd_corpus_build(args: argparse.Namespace) -> int:
     return result.exit_code
 
 
+def _print_warning(message: Warning | str, category: type[Warning], filename: str, lineno: int, file: Any = None,
+                   line: str | None = None) -> None:
+    """:func:`warnings.showwarning` for the command line: ``warning: MESSAGE`` on standard error."""
+    print(f"warning: {message}", file=file or sys.stderr)
+
+
 def _print_source_warnings(path: Any) -> None:
     """Per-source warnings of a finished store (upsampling, missing chunks, overflow, ...)."""
     from pathlib import Path
@@ -569,6 +575,11 @@ def main(argv: Sequence[str] | None = None) -> int:
                 "inspect": cmd_inspect, ("corpus", "build"): cmd_corpus_build, ("corpus", "show"): cmd_corpus_show,
                 ("corpus", "merge"): cmd_corpus_merge}
     key = (args.command, args.corpus_command) if args.command == "corpus" else args.command
+    # The library's warnings (a bench rerun that makes runs again, data unlike an encoder file's,
+    # ...) print as one "warning: ..." line, as the per-source warnings do: not with the Python
+    # file and source line they were raised from, which reads like a traceback.
+    shown = warnings.showwarning
+    warnings.showwarning = _print_warning
     try:
         return handlers[key](args)
     except WarmstartError as err:
@@ -580,3 +591,5 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("warmstart: interrupted; rerun the same command to resume", file=sys.stderr)
         return 130
+    finally:
+        warnings.showwarning = shown
