@@ -30,6 +30,8 @@ _LAZY = {
     "WarmStartReport": "warmstart.export.load",
     "prepare": "warmstart.export.prepare",
     "UNet": "warmstart.unet",
+    "finetune_groups": "warmstart.finetune",
+    "finetune_scheduler": "warmstart.finetune",
 }
 
 __all__ = ["__version__", *_LAZY]

@@ -122,3 +122,29 @@ def volume_table(result: dict[str, Any]) -> tuple[list[str], list[list[str]]]:
                 rows.append([str(n), c["label"], *(ci(bounded_ci([r["test_dice_per_volume"][k] for r in rs])) for k in keys)])
     head = [f"{unit(result)}s", "contender"] + [names[int(k)] if int(k) < len(names) else k for k in keys]
     return head, rows
+
+
+def convergence_note(result: dict[str, Any]) -> str:
+    """The convergence rule and the learned-class rule, in words, with their settings."""
+    s = result["settings"]
+    return (f"A run converged when its best validation Dice of the last {s.get('plateau_epochs', 3)} epochs is at most "
+            f"{s.get('plateau_margin', 0.01):g} above its best before them; a run learned every class when each "
+            f"foreground class reached test Dice {s.get('learned_dice', 0.1):g}. Flagged replicates are averaged in "
+            "above like the others: read their means as the figures of runs that may not have finished learning.")
+
+
+def convergence_table(result: dict[str, Any]) -> tuple[list[str], list[list[str]]]:
+    """Per size and contender: converged runs, runs that learned every class, and the flagged
+    replicates (no rows for runs recorded before these figures)."""
+    rows = []
+    for n in result["settings"]["sizes"]:
+        for c in result["contenders"]:
+            rs = [r for r in result["runs"] if r["size"] == n and r["contender"] == c["id"] and "converged" in r]
+            if not rs:
+                continue
+            flagged = [f"{r['seed']}" + ("" if r["converged"] else " (no plateau)")
+                       + ("" if r["learned_every_class"] else " (missed a class)")
+                       for r in sorted(rs, key=lambda r: r["seed"]) if not (r["converged"] and r["learned_every_class"])]
+            rows.append([str(n), c["label"], f"{sum(r['converged'] for r in rs)} of {len(rs)}",
+                         f"{sum(r['learned_every_class'] for r in rs)} of {len(rs)}", ", ".join(flagged) or "none"])
+    return [f"{unit(result)}s", "contender", "converged", "learned every class", "flagged replicates"], rows

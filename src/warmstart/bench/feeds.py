@@ -4,6 +4,16 @@ so every contender of the same dimensionality sees the same patches.
 2-D contenders draw square patches from training tiles (flips and quarter turns); 3-D contenders
 draw cubic patches from training cubes (flips along each axis and quarter turns in the Y-X plane,
 the plane whose voxels are square in every volume).
+
+Class-aware sampling: a fraction of each step's patches (``bench.class_aware_fraction``, the last
+ones of the batch) is centred on a voxel of a labelled class instead of placed uniformly: the
+class is drawn uniformly from the foreground classes the tile or cube holds, then the voxel
+uniformly from that class's voxels, and the patch is moved inside the tile where the voxel lies
+near an edge. This is the common practice of foreground oversampling in 3-D medical segmentation
+frameworks (nnU-Net forces a third of its patches onto foreground, Isensee et al., Nature Methods
+2021): a small patch drawn uniformly from a large tile often holds no voxel of a rare or thin
+class, and a network that never sees one never learns it. The draws depend on the seed, the
+training-set size and the labels alone, so every contender of a replicate sees the same patches.
 """
 from __future__ import annotations
 
@@ -15,11 +25,41 @@ import torch
 from .data import Split
 from .settings import BenchSettings
 
-__all__ = ["patch_plan", "cube_plan", "tile_batch", "cube_batch"]
+__all__ = ["patch_plan", "cube_plan", "tile_batch", "cube_batch", "class_aware_count"]
 
 
-def patch_plan(split: Split, n_tiles: int, s: BenchSettings, seed: int) -> np.ndarray:
-    """2-D: every step's patches, fixed by (seed, n_tiles) alone.
+def class_aware_count(batch: int, fraction: float) -> int:
+    """Patches of a batch centred on a labelled class: ``round(fraction * batch)``, at least one
+    when ``fraction > 0`` (with batches of 2, as 3-D fine-tuning on a CPU uses, one in two)."""
+    return 0 if fraction <= 0 else min(batch, max(1, round(fraction * batch)))
+
+
+def _centre_on_class(rng: np.random.Generator, label: np.ndarray, patch: Sequence[int], ignore: int | None,
+                     count: int) -> np.ndarray | None:
+    """``count`` patch offsets (count, ndim) inside ``label`` whose patches are centred (where the
+    edges allow) on a voxel of a foreground class drawn uniformly from those ``label`` holds;
+    ``None`` when it holds none."""
+    classes = [int(c) for c in np.unique(label) if c > 0 and (ignore is None or c != ignore)]
+    if not classes or count == 0:
+        return None
+    where = {c: np.flatnonzero(label == c) for c in classes}
+    picks = rng.integers(len(classes), size=count)
+    out = np.zeros((count, label.ndim), dtype=np.int64)
+    for j, ci in enumerate(picks):
+        flat = where[classes[int(ci)]]
+        voxel = np.unravel_index(flat[rng.integers(flat.size)], label.shape)
+        for a, (v, p, n) in enumerate(zip(voxel, patch, label.shape)):
+            out[j, a] = min(max(int(v) - p // 2, 0), n - p)
+    return out
+
+
+def patch_plan(split: Split, n_tiles: int, s: BenchSettings, seed: int,
+               labels: Sequence[np.ndarray] | None = None) -> np.ndarray:
+    """2-D: every step's patches, fixed by (seed, n_tiles) and the labels alone.
+
+    With ``labels`` and ``s.class_aware_fraction > 0`` the last
+    :func:`class_aware_count` patches of every step are centred on a labelled class (module
+    docstring); without, every patch is placed uniformly.
 
     Returns
     -------
@@ -38,6 +78,16 @@ def patch_plan(split: Split, n_tiles: int, s: BenchSettings, seed: int) -> np.nd
         out[..., 2][sel] = rng.integers(w - p + 1, size=int(sel.sum()))
     out[..., 3:5] = rng.integers(2, size=(steps, b, 2))
     out[..., 5] = rng.integers(4, size=(steps, b))
+    forced = class_aware_count(b, s.class_aware_fraction) if labels is not None else 0
+    if forced:
+        crng = np.random.default_rng([seed, n_tiles, 7927])
+        for k in range(n_tiles):
+            i, z, y, x, h, w = split.tiles[k]
+            p = min(s.patch_size, h, w)
+            sel = np.argwhere(out[:, b - forced:, 0] == k)
+            offs = _centre_on_class(crng, labels[i][z, y:y + h, x:x + w], (p, p), s.ignore_label, len(sel))
+            if offs is not None:
+                out[sel[:, 0], b - forced + sel[:, 1], 1:3] = offs
     return out
 
 
@@ -48,8 +98,10 @@ def cube_patch_shape(cube: Sequence[int], s: BenchSettings) -> tuple[int, int, i
     return min(s.cube_patch_size, d), side, side
 
 
-def cube_plan(split: Split, n_cubes: int, s: BenchSettings, seed: int) -> np.ndarray:
-    """3-D: every step's patches, fixed by (seed, n_cubes) alone.
+def cube_plan(split: Split, n_cubes: int, s: BenchSettings, seed: int,
+              labels: Sequence[np.ndarray] | None = None) -> np.ndarray:
+    """3-D: every step's patches, fixed by (seed, n_cubes) and the labels alone (class-aware
+    sampling as in :func:`patch_plan`).
 
     Returns
     -------
@@ -68,6 +120,16 @@ def cube_plan(split: Split, n_cubes: int, s: BenchSettings, seed: int) -> np.nda
             out[..., 1 + a][sel] = rng.integers(cube[4 + a] - shape[a] + 1, size=int(sel.sum()))
     out[..., 4:7] = rng.integers(2, size=(steps, b, 3))
     out[..., 7] = rng.integers(4, size=(steps, b))
+    forced = class_aware_count(b, s.class_aware_fraction) if labels is not None else 0
+    if forced:
+        crng = np.random.default_rng([seed, n_cubes, 104723])
+        for k in range(n_cubes):
+            i, z, y, x, d, h, w = split.cubes[k]
+            sel = np.argwhere(out[:, b - forced:, 0] == k)
+            offs = _centre_on_class(crng, labels[i][z:z + d, y:y + h, x:x + w], cube_patch_shape(split.cubes[k], s),
+                                    s.ignore_label, len(sel))
+            if offs is not None:
+                out[sel[:, 0], b - forced + sel[:, 1], 1:4] = offs
     return out
 
 

@@ -12,7 +12,8 @@ import html
 from typing import Any, Sequence
 
 from .cells import ci as _ci
-from .cells import PAIRS_NOTE, epochs_cell, measure_note, measure_table, pairs_table, size_heading, unit, volume_table
+from .cells import PAIRS_NOTE, convergence_note, convergence_table, epochs_cell, measure_note, measure_table, \
+    pairs_table, size_heading, unit, volume_table
 
 __all__ = ["html_page", "CLASS_COLOURS"]
 
@@ -91,6 +92,7 @@ def html_page(result: dict[str, Any], figures: Sequence[tuple[str, str]], intro:
         if title.startswith("Test predictions"):
             continue
         parts.append(f"<h2>{_e(title)}</h2><img alt='{_e(title)}' src='data:image/png;base64,{b64}'>")
+    parts.append(_section("Convergence", convergence_note(result), *convergence_table(result)))
     parts.append(_per_class(result, labels, class_names))
     parts.append(_section("Test Dice per labelled volume", "", *volume_table(result)))
     parts.append(_section("Measurement error", measure_note(result), *measure_table(result)))

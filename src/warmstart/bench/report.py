@@ -12,8 +12,8 @@ import numpy as np
 
 from ..base.atomic import write_json
 from .cells import ci as _ci
-from .cells import PAIRS_NOTE, epochs_cell, measure_note, measure_table, pairs_table, shown_slices, size_heading, unit, \
-    volume_table
+from .cells import PAIRS_NOTE, convergence_note, convergence_table, epochs_cell, measure_note, measure_table, \
+    pairs_table, shown_slices, size_heading, unit, volume_table
 from .cells import num as _num
 
 __all__ = ["write_report", "markdown", "verdicts"]
@@ -114,6 +114,7 @@ def markdown(result: dict[str, Any]) -> str:
               f"`bench.dice_threshold` {s['dice_threshold']:g} stays in bench.json), averaged "
               "over the replicates that reached it; (reached) counts those replicates out of all. "
               "`*`: the 95 % interval of the paired difference excludes zero.", "", "## In words", ""] + [f"- {v}" for v in verdicts(result)] + [""]
+    lines += _md_section("Convergence", convergence_note(result), *convergence_table(result))
     lines += _md_section("Test Dice per labelled volume", "", *volume_table(result))
     lines += _md_section("Measurement error", measure_note(result), *measure_table(result))
     lines += _md_section("Every pair of contenders", PAIRS_NOTE, *pairs_table(result))

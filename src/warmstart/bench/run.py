@@ -317,7 +317,8 @@ def _one_run(c: Contender, images: list[np.ndarray], labels: list[np.ndarray], s
     from .train import fine_tune
 
     try:
-        return fine_tune(_model_factory(c, classes, s), images, labels, split, n, seed, classes, s, device, keep)
+        return fine_tune(_model_factory(c, classes, s), images, labels, split, n, seed, classes, s, device, keep,
+                         warm=c.file is not None)
     except WarmstartError:
         raise
     except RuntimeError as e:  # e.g. out of memory: name the run

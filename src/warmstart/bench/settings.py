@@ -38,9 +38,32 @@ class BenchSettings:
     epochs, steps_per_epoch, batch_size : int
         Fine-tuning length: ``epochs * steps_per_epoch`` optimizer steps of ``batch_size`` patches.
     lr, weight_decay : float
-        AdamW, cosine schedule to 0.
+        Peak learning rate and weight decay.
+    optimizer : {"adamw", "sgd"}
+        AdamW, or SGD with Nesterov momentum ``momentum`` (the common practice for nnU-Net's
+        networks, momentum 0.99).
+    momentum : float
+        SGD's momentum.
+    schedule : {"cosine", "poly", "constant"}
+        Learning rate after the warm-up: cosine decay to 0, polynomial decay ``(1 - t)**0.9`` as
+        nnU-Net uses, or constant.
+    warmup_steps : int
+        Linear warm-up from ``lr / warmup_steps`` to ``lr`` over the first steps (0: none).
     encoder_lr_factor : float
-        The encoder's learning rate is ``lr * encoder_lr_factor``.
+        The encoder's learning rate is ``lr * encoder_lr_factor`` (every contender alike).
+    warm_encoder_lr_factor : float
+        Warm starts only: their encoder's learning rate is multiplied by this as well (the one
+        setting in which a warm start may differ from random init; the report's settings say it).
+    class_aware_fraction : float
+        Fraction of each step's patches centred on a voxel of a labelled class (:mod:`.feeds`);
+        0: every patch placed uniformly.
+    plateau_epochs, plateau_margin : int, float
+        Convergence rule: a run converged when its best validation Dice of the last
+        ``plateau_epochs`` epochs is no more than ``plateau_margin`` above its best before them
+        (the run keeps its full budget; ``epochs`` is the cap). Runs that did not are flagged.
+    learned_dice : float
+        A class counts as learned by a run when its test Dice reaches this; runs that missed a
+        class are flagged in the report.
     freeze_encoder_epochs : int
         Keep the encoder fixed for the first N epochs (every contender alike).
     val_slices, test_slices : int
@@ -93,8 +116,17 @@ class BenchSettings:
     batch_size: int = 8
     lr: float = 1e-3
     weight_decay: float = 1e-4
+    optimizer: str = "adamw"
+    momentum: float = 0.99
+    schedule: str = "cosine"
+    warmup_steps: int = 0
     encoder_lr_factor: float = 1.0
+    warm_encoder_lr_factor: float = 1.0
     freeze_encoder_epochs: int = 0
+    class_aware_fraction: float = 0.33
+    plateau_epochs: int = 3
+    plateau_margin: float = 0.01
+    learned_dice: float = 0.1
     val_slices: int = 4
     test_slices: int = 8
     gap_slices: int = 2
@@ -135,6 +167,16 @@ class BenchSettings:
             raise RecipeError(f"bench.window_overlap must be in [0, 1), got {self.window_overlap}")
         if not 0 < self.dice_threshold <= 1:
             raise RecipeError(f"bench.dice_threshold must be in (0, 1], got {self.dice_threshold}")
+        if self.optimizer not in ("adamw", "sgd"):
+            raise RecipeError(f"bench.optimizer must be adamw or sgd, got {self.optimizer!r}")
+        if self.schedule not in ("cosine", "poly", "constant"):
+            raise RecipeError(f"bench.schedule must be cosine, poly or constant, got {self.schedule!r}")
+        if self.warmup_steps < 0 or self.warm_encoder_lr_factor < 0 or not 0 <= self.momentum < 1:
+            raise RecipeError("bench.warmup_steps and warm_encoder_lr_factor must be >= 0, momentum in [0, 1)")
+        if not 0 <= self.class_aware_fraction <= 1:
+            raise RecipeError(f"bench.class_aware_fraction must be in [0, 1], got {self.class_aware_fraction}")
+        if self.plateau_epochs < 1 or self.plateau_margin < 0 or not 0 < self.learned_dice <= 1:
+            raise RecipeError("bench.plateau_epochs must be >= 1, plateau_margin >= 0, learned_dice in (0, 1]")
         if self.device not in ("auto", "cpu", "cuda"):
             raise RecipeError(f"bench.device must be auto, cpu or cuda, got {self.device!r}")
 

@@ -1,7 +1,6 @@
 """One benchmark run: fine-tune the reference U-Net on n tiles or cubes, validate every epoch, test at the end."""
 from __future__ import annotations
 
-import math
 import time
 from typing import Any, Callable, Sequence
 
@@ -11,6 +10,7 @@ import torch.nn.functional as F
 
 from ..encoders.memory import module_channels_last, to_channels_last
 from ..errors import WarmstartError
+from ..finetune import lr_factor
 from .data import Split
 from .evaluate import evaluate, network_dims, predict_slice, units
 from .feeds import cube_batch, cube_plan, patch_plan, tile_batch
@@ -39,9 +39,31 @@ def _foreground_mean(d: np.ndarray) -> float:
     return float(np.mean(d[1:])) if len(d) > 1 else float(d[0])
 
 
+def converged(val_curve: Sequence[float], epochs: int, margin: float) -> bool:
+    """The convergence rule (:class:`BenchSettings`): the best validation Dice of the last
+    ``epochs`` epochs is at most ``margin`` above the best before them (a curve no longer than
+    ``epochs`` has not shown a plateau)."""
+    if len(val_curve) <= epochs:
+        return False
+    return max(val_curve[-epochs:]) <= max(val_curve[:-epochs]) + margin
+
+
+def _optimizer(model: torch.nn.Module, s: BenchSettings, warm: bool) -> torch.optim.Optimizer:
+    """AdamW or SGD (Nesterov) over two groups: the encoder at ``lr * encoder_lr_factor`` (times
+    ``warm_encoder_lr_factor`` for a warm start), the rest at ``lr``."""
+    factor = s.encoder_lr_factor * (s.warm_encoder_lr_factor if warm else 1.0)
+    enc = list(model.encoder.parameters())
+    ids = {id(p) for p in enc}
+    groups = [{"params": enc, "lr": s.lr * factor}, {"params": [p for p in model.parameters() if id(p) not in ids],
+                                                     "lr": s.lr}]
+    if s.optimizer == "sgd":
+        return torch.optim.SGD(groups, momentum=s.momentum, nesterov=True, weight_decay=s.weight_decay)
+    return torch.optim.AdamW(groups, weight_decay=s.weight_decay)
+
+
 def fine_tune(make_model: Callable[[], torch.nn.Module], images: Sequence[np.ndarray], labels: Sequence[np.ndarray],
               split: Split, n: int, seed: int, classes: int, s: BenchSettings, device: torch.device,
-              keep_predictions: int = 0) -> dict[str, Any]:
+              keep_predictions: int = 0, warm: bool = False) -> dict[str, Any]:
     """Fine-tune one network and measure it.
 
     Parameters
@@ -57,6 +79,8 @@ def fine_tune(make_model: Callable[[], torch.nn.Module], images: Sequence[np.nda
     keep_predictions : int
         Also return the predictions of this many test slices (for the report's montage; the
         middle slice of each test slab with the cubes split).
+    warm : bool
+        A warm start: ``s.warm_encoder_lr_factor`` applies to its encoder.
 
     Returns
     -------
@@ -84,19 +108,16 @@ def fine_tune(make_model: Callable[[], torch.nn.Module], images: Sequence[np.nda
             m.momentum = None
             m.reset_running_stats()
     enc = list(model.encoder.parameters())
-    ids = {id(p) for p in enc}
-    rest = [p for p in model.parameters() if id(p) not in ids]
-    opt = torch.optim.AdamW([{"params": enc, "lr": s.lr * s.encoder_lr_factor}, {"params": rest, "lr": s.lr}],
-                            weight_decay=s.weight_decay)
+    opt = _optimizer(model, s, warm)
     total = s.total_steps
-    sched = torch.optim.lr_scheduler.LambdaLR(opt, lambda k: 0.5 * (1 + math.cos(math.pi * min(k, total) / total)))
+    sched = torch.optim.lr_scheduler.LambdaLR(opt, lambda k: lr_factor(k, total, s.schedule, s.warmup_steps))
     if dims == 3:
-        plan = cube_plan(split, n, s, seed)
+        plan = cube_plan(split, n, s, seed, labels)
 
         def batch(step: int) -> tuple[torch.Tensor, torch.Tensor]:
             return cube_batch(images, labels, split, plan[step], s)
     else:
-        plan = patch_plan(split, split.n_tiles(n), s, seed)
+        plan = patch_plan(split, split.n_tiles(n), s, seed, labels)
 
         def batch(step: int) -> tuple[torch.Tensor, torch.Tensor]:
             return tile_batch(images, labels, split, plan[step], s.patch_size)
@@ -137,6 +158,8 @@ def fine_tune(make_model: Callable[[], torch.nn.Module], images: Sequence[np.nda
         "epochs_to_threshold": epochs_to_reach(val_curve, s.dice_threshold),
         "final_loss": float(loss.detach()), "seconds": round(time.perf_counter() - t0, 2),
         "measures": measures,
+        "converged": converged(val_curve, s.plateau_epochs, s.plateau_margin),
+        "learned_every_class": bool(np.all(test[1:] >= s.learned_dice)) if len(test) > 1 else bool(test[0] >= s.learned_dice),
     }
     if keep_predictions:
         shown = test_preds[:keep_predictions]

@@ -13,7 +13,7 @@ from .file import read_encoder_file
 from .layouts import LAYOUTS, Layout, family
 from .manifest import spatial_dims
 
-__all__ = ["load_encoder", "warm_start", "WarmStartReport", "adapt_input_channels", "split_parts"]
+__all__ = ["load_encoder", "warm_start", "WarmStartReport", "adapt_input_channels", "split_parts", "placed_keys"]
 
 DECODER_PREFIX = "decoder."
 
@@ -124,6 +124,8 @@ class WarmStartReport:
         loaded).
     decoder_note : str
         What happened to the file's decoder: loaded, not used and why, or "" (the file has none).
+    inflated : list of str
+        Target keys filled with a 2-D kernel inflated to 3-D (``inflate=``, :mod:`.inflate`).
     """
 
     file: str
@@ -139,6 +141,7 @@ class WarmStartReport:
     hint: str = ""
     decoder: list[str] = field(default_factory=list)
     decoder_note: str = ""
+    inflated: list[str] = field(default_factory=list)
 
     @property
     def complete(self) -> bool:
@@ -151,6 +154,8 @@ class WarmStartReport:
 
         lines = [f"warm start from {self.file} (layout {self.layout}): {len(self.loaded)} tensors loaded"
                  + ("" if self.applied else " - NOT applied")]
+        if self.inflated:
+            lines.append(f"  2-D kernels inflated to 3-D: {few(self.inflated)}")
         if self.adapted:
             lines.append(f"  input channels adapted: {few(self.adapted)}")
         if self.zero_filled:
@@ -173,7 +178,18 @@ class WarmStartReport:
 Plan = tuple[WarmStartReport, dict[str, Any]]  # the report, and the tensors to copy by target key
 
 
-def _plan(layout: Layout, ours: dict[str, Any], theirs: dict[str, Any], first_conv: str, file: str) -> Plan:
+def _inflated(src: Any, target: Any, inflate: str | None) -> Any:
+    """``src`` inflated to the target's 3-D kernel depth when it is a 2-D kernel of the same
+    spatial size and ``inflate`` is set; otherwise ``src`` itself."""
+    from .inflate import inflate_kernel
+
+    if inflate and src.ndim == 4 and target.ndim == 5 and tuple(src.shape[2:]) == tuple(target.shape[3:]):
+        return inflate_kernel(src, int(target.shape[2]), inflate)
+    return src
+
+
+def _plan(layout: Layout, ours: dict[str, Any], theirs: dict[str, Any], first_conv: str, file: str,
+          inflate: str | None = None) -> Plan:
     import torch
 
     rep = WarmStartReport(str(file), layout.name)
@@ -190,6 +206,10 @@ def _plan(layout: Layout, ours: dict[str, Any], theirs: dict[str, Any], first_co
             continue
         t = theirs[tk]
         src = torch.as_tensor(v)
+        if inflate and src.ndim == 4 and t.ndim == 5:
+            src = _inflated(src, t, inflate)
+            if src.ndim == 5:
+                rep.inflated.append(tk)
         if tuple(src.shape) != tuple(t.shape):
             if k in firsts and src.ndim in (4, 5) and src.shape[0] == t.shape[0] and src.shape[2:] == t.shape[2:]:
                 src = adapt_input_channels(src, int(t.shape[1]))
@@ -219,13 +239,18 @@ def _plan(layout: Layout, ours: dict[str, Any], theirs: dict[str, Any], first_co
     return rep, copy
 
 
-def _plan_decoder(layout: Layout, dec: dict[str, Any], theirs: dict[str, Any], model: Any) -> tuple[dict[str, Any], str]:
-    """(tensors to copy by target key, note): all or nothing, an exact match only."""
+def _plan_decoder(layout: Layout, dec: dict[str, Any], theirs: dict[str, Any], model: Any,
+                  inflate: str | None = None) -> tuple[dict[str, Any], str]:
+    """(tensors to copy by target key, note): all or nothing, an exact match only (after
+    inflation, with ``inflate``)."""
     import torch
 
     if layout.decoder is None:
         return {}, f"not loaded: layout {layout.name!r} has no place for warmstart's U-Net decoder (the encoder alone was loaded)"
     mapping = layout.decoder.map_keys(list(dec))
+    if inflate:
+        dec = {k: _inflated(torch.as_tensor(v), theirs[mapping[k]], inflate) if mapping.get(k) in theirs else v
+               for k, v in dec.items()}
     problems = [f"no place for {k}" for k in dec if k not in mapping]
     problems += [f"the network has no {mapping[k]}" for k in dec if k in mapping and mapping[k] not in theirs]
     problems += [f"{mapping[k]} ours {tuple(dec[k].shape)} theirs {tuple(theirs[mapping[k]].shape)}" for k in dec
@@ -243,19 +268,24 @@ def _plan_decoder(layout: Layout, dec: dict[str, Any], theirs: dict[str, Any], m
 
 
 def _check_dims(layout: Layout, ours: dict[str, Any], theirs: dict[str, Any], first_conv: str, dims: int,
-                model: Any, file: str) -> None:
-    """Refuse a 2-D file for a 3-D network and the other way round, naming both (nothing fits then)."""
+                model: Any, file: str, inflate: str | None = None) -> None:
+    """Refuse a 2-D file for a 3-D network (unless ``inflate``) and a 3-D file for a 2-D network,
+    naming both (nothing fits then)."""
     tk = layout.map_key(first_conv + ".weight")
     if tk is None or tk not in theirs or theirs[tk].ndim not in (4, 5):
         return
     net_dims = theirs[tk].ndim - 2
-    if net_dims != dims:
+    if inflate and (dims, net_dims) != (2, 3):
+        raise WeightsMismatchError(f"{file}: inflate={inflate!r} warm-starts a 3-D network from a 2-D file; the file "
+                                   f"is {dims}-D and {type(model).__name__} is {net_dims}-D (leave inflate out)")
+    if net_dims != dims and not inflate:
         kernel = "x".join(str(n) for n in tuple(ours[first_conv + ".weight"].shape[2:]))
         raise WeightsMismatchError(
             f"{file}: the file holds a {dims}-D encoder ({kernel} kernels, trained on "
             f"{'cubes' if dims == 3 else 'slices'}) and {type(model).__name__} is a {net_dims}-D network "
             f"(its {tk} is {tuple(theirs[tk].shape)}); build the network with spatial_dims={dims}, "
-            f"or pretrain a {net_dims}-D encoder (sampling.spatial_dims = {net_dims})")
+            f"or pretrain a {net_dims}-D encoder (sampling.spatial_dims = {net_dims})"
+            + (", or inflate the 2-D kernels (inflate='mean' or 'center')" if (dims, net_dims) == (2, 3) else ""))
 
 
 def _library(model: Any) -> str:
@@ -263,20 +293,20 @@ def _library(model: Any) -> str:
 
 
 def _choose(model: Any, ours: dict[str, Any], theirs: dict[str, Any], fam: str, first_conv: str, file: str,
-            layout: str) -> Plan:
+            layout: str, inflate: str | None = None) -> Plan:
     if layout != "auto":
         if layout not in LAYOUTS:
             raise WeightsMismatchError(f"unknown layout {layout!r}; known: auto, {', '.join(LAYOUTS)}")
         if fam not in LAYOUTS[layout].families:
             raise WeightsMismatchError(f"{file}: layout {layout!r} takes {'/'.join(LAYOUTS[layout].families)} encoders, "
                                  f"the file holds a {fam} encoder")
-        return _plan(LAYOUTS[layout], ours, theirs, first_conv, file)
+        return _plan(LAYOUTS[layout], ours, theirs, first_conv, file, inflate)
     lib = _library(model)
     cands = [L for L in LAYOUTS.values() if fam in L.families]
     if not cands:
         raise WeightsMismatchError(f"{file}: no layout takes {fam} encoders; this warmstart knows "
                                    f"{', '.join(sorted({f for L in LAYOUTS.values() for f in L.families}))}")
-    plans = [_plan(L, ours, theirs, first_conv, file) for L in cands]
+    plans = [_plan(L, ours, theirs, first_conv, file, inflate) for L in cands]
     # The layout whose key names find the most places (shape mismatches included: they are the
     # user's to see in the report), less the network's encoder keys it leaves empty; among equals,
     # the one written for the network's own library, then the first listed.
@@ -292,8 +322,42 @@ def _choose(model: Any, ours: dict[str, Any], theirs: dict[str, Any], fam: str, 
     return plans[best]
 
 
+def _planned(model: Any, file: str | os.PathLike[str], layout: str, decoder: bool | None,
+             inflate: str | None) -> Plan:
+    """The report and the tensors to copy, nothing copied yet (see :func:`warm_start`)."""
+    from .inflate import RULES
+
+    if inflate is not None and inflate not in RULES:
+        raise WeightsMismatchError(f"inflate must be one of {', '.join(RULES)} (or left out), got {inflate!r}")
+    manifest, arrays = read_encoder_file(file)
+    ours, dec = split_parts(arrays)
+    fam = family(manifest["encoder"]["spec"]["name"])
+    theirs = model.state_dict()
+    first_conv = manifest["encoder"]["first_conv"]
+    rep, copy = _choose(model, ours, theirs, fam, first_conv, str(file), layout, inflate)
+    _check_dims(LAYOUTS[rep.layout], ours, theirs, first_conv, spatial_dims(manifest), model, str(file), inflate)
+    if dec and decoder is False:
+        rep.decoder_note = "not loaded (decoder=False)"
+    elif dec:
+        dcopy, rep.decoder_note = _plan_decoder(LAYOUTS[rep.layout], dec, theirs, model, inflate)
+        if decoder and not dcopy:
+            raise WeightsMismatchError(f"{file}: decoder=True but the decoder was {rep.decoder_note}")
+        copy.update(dcopy)
+        rep.decoder = sorted(dcopy)
+        rep.untouched -= len(dcopy)
+    elif decoder:
+        raise WeightsMismatchError(f"{file}: decoder=True but the file holds no decoder (export it with --with-decoder)")
+    return rep, copy
+
+
+def placed_keys(model: Any, file: str | os.PathLike[str], layout: str = "auto", inflate: str | None = None) -> list[str]:
+    """The network's keys that :func:`warm_start` fills from the file's encoder (nothing is copied)."""
+    rep, _ = _planned(model, file, layout, False, inflate)
+    return rep.loaded + rep.zero_filled
+
+
 def warm_start(model: Any, file: str | os.PathLike[str], layout: str = "auto", strict: bool = True,
-               decoder: bool | None = None) -> WarmStartReport:
+               decoder: bool | None = None, inflate: str | None = None) -> WarmStartReport:
     """Copy an encoder file's weights (and its decoder, where the network's matches) into a network.
 
     Parameters
@@ -314,6 +378,10 @@ def warm_start(model: Any, file: str | os.PathLike[str], layout: str = "auto", s
         bilinear upsampling) and otherwise loads the encoder alone; ``True`` refuses unless the
         decoder is loaded too; ``False`` leaves the network's decoder as it is. The report's
         ``decoder_note`` says which happened.
+    inflate : {"mean", "center"}, optional
+        Warm-start a 3-D network from a 2-D file: every 2-D kernel becomes a 3-D kernel of the
+        network's depth (:mod:`warmstart.export.inflate`); the network must have the file's
+        stages and widths. Leave out for a file of the network's own dimensionality.
 
     Returns
     -------
@@ -328,24 +396,7 @@ def warm_start(model: Any, file: str | os.PathLike[str], layout: str = "auto", s
     """
     import torch
 
-    manifest, arrays = read_encoder_file(file)
-    ours, dec = split_parts(arrays)
-    fam = family(manifest["encoder"]["spec"]["name"])
-    theirs = model.state_dict()
-    first_conv = manifest["encoder"]["first_conv"]
-    rep, copy = _choose(model, ours, theirs, fam, first_conv, str(file), layout)
-    _check_dims(LAYOUTS[rep.layout], ours, theirs, first_conv, spatial_dims(manifest), model, str(file))
-    if dec and decoder is False:
-        rep.decoder_note = "not loaded (decoder=False)"
-    elif dec:
-        dcopy, rep.decoder_note = _plan_decoder(LAYOUTS[rep.layout], dec, theirs, model)
-        if decoder and not dcopy:
-            raise WeightsMismatchError(f"{file}: decoder=True but the decoder was {rep.decoder_note}")
-        copy.update(dcopy)
-        rep.decoder = sorted(dcopy)
-        rep.untouched -= len(dcopy)
-    elif decoder:
-        raise WeightsMismatchError(f"{file}: decoder=True but the file holds no decoder (export it with --with-decoder)")
+    rep, copy = _planned(model, file, layout, decoder, inflate)
     if strict and not rep.complete:
         raise WeightsMismatchError(f"{rep}\n(strict: nothing was copied; pass strict=False to load what fits)")
     with torch.no_grad():

@@ -1,0 +1,124 @@
+"""Fine-tuning a warm-started network: optimizer parameter groups and the learning-rate schedule.
+
+The benchmark fine-tunes every contender with these functions, and users call the same ones in
+their own training loops, so that what the benchmark measured is what they run::
+
+    import torch, warmstart
+    net = warmstart.UNet.from_file("encoder.safetensors", classes=3)
+    groups = warmstart.finetune_groups(net, "encoder.safetensors", lr=2e-3)
+    opt = torch.optim.AdamW(groups, weight_decay=1e-4)
+    sched = warmstart.finetune_scheduler(opt, total_steps=2000, file="encoder.safetensors")
+    for step in range(2000):
+        ...  # loss.backward(); opt.step(); sched.step()
+
+The recommendation a file carries (manifest ``fine_tuning``, the encoder card) is
+:data:`RECOMMENDED`: it was chosen with ``tools/diagnose_finetune.py`` (README, "Fine-tuning a
+warm start").
+"""
+from __future__ import annotations
+
+import math
+import os
+from typing import Any
+
+__all__ = ["RECOMMENDED", "NNUNET_LINE", "finetune_groups", "finetune_scheduler", "lr_factor", "recommendation"]
+
+# What tools/diagnose_finetune.py measured as best for warm starts (README, "Fine-tuning a warm start").
+RECOMMENDED: dict[str, Any] = {
+    "optimizer": "adamw",
+    "encoder_lr_factor": 1.0,
+    "schedule": "cosine",
+    "warmup_fraction": 0.05,
+    "class_aware_fraction": 0.33,
+}
+
+# nnU-Net users: the trainer with a linear warm-up (nnunetv2 2.8's nnUNetTrainer_warmup) and the
+# checkpoint warmstart writes (README, "nnU-Net").
+NNUNET_LINE = ("nnUNetv2_train DATASET CONFIGURATION FOLD -tr nnUNetTrainer_warmup "
+               "-pretrained_weights pretrained.pth")
+
+
+def lr_factor(step: int, total: int, schedule: str = "cosine", warmup: int = 0) -> float:
+    """The learning-rate multiplier at optimizer step ``step`` (0-based) of ``total``.
+
+    A linear warm-up from ``1 / warmup`` to 1 over the first ``warmup`` steps, then ``cosine``
+    (half a cosine from 1 to 0), ``poly`` (``(1 - t) ** 0.9``, nnU-Net's decay) or ``constant``,
+    with ``t`` the fraction of the steps after the warm-up that have passed.
+    """
+    if warmup > 0 and step < warmup:
+        return (step + 1) / warmup
+    rest = max(total - warmup, 1)
+    t = min(max(step - warmup, 0), rest) / rest
+    if schedule == "cosine":
+        return 0.5 * (1 + math.cos(math.pi * t))
+    if schedule == "poly":
+        return (1 - t) ** 0.9
+    if schedule == "constant":
+        return 1.0
+    raise ValueError(f"schedule must be cosine, poly or constant, got {schedule!r}")
+
+
+def recommendation(file: str | os.PathLike[str] | None = None) -> dict[str, Any]:
+    """The fine-tuning a file recommends (its manifest's ``fine_tuning``), else :data:`RECOMMENDED`."""
+    if file is None:
+        return dict(RECOMMENDED)
+    from .export.file import read_manifest
+
+    return {**RECOMMENDED, **(read_manifest(file).get("fine_tuning") or {})}
+
+
+def finetune_groups(model: Any, file: str | os.PathLike[str] | None = None, lr: float = 1e-3,
+                    encoder_lr_factor: float | None = None, layout: str = "auto",
+                    inflate: str | None = None) -> list[dict[str, Any]]:
+    """Optimizer parameter groups: the warm-started encoder's, and the rest of the network's.
+
+    Parameters
+    ----------
+    model : torch.nn.Module
+        The network (warm-started from ``file`` or about to be).
+    file : path, optional
+        The encoder file: its parameters are those :func:`warmstart.warm_start` fills (any
+        layout: warmstart's U-Net, smp, nnU-Net, MONAI...). Without a file, a ``model.encoder``
+        attribute names the encoder.
+    lr : float
+        The learning rate of the rest (decoder, head).
+    encoder_lr_factor : float, optional
+        The encoder's learning rate is ``lr * encoder_lr_factor`` (default: the file's
+        recommendation).
+    layout, inflate
+        As for :func:`warmstart.warm_start`.
+
+    Returns
+    -------
+    list of dict
+        ``[{"params": [...], "lr": ..., "name": "encoder"}, {"params": [...], "lr": lr, "name":
+        "rest"}]``, for any torch optimizer; every trainable parameter in exactly one group.
+    """
+    factor = float(recommendation(file)["encoder_lr_factor"] if encoder_lr_factor is None else encoder_lr_factor)
+    if file is not None:
+        from .export.load import placed_keys
+
+        placed = set(placed_keys(model, file, layout=layout, inflate=inflate))
+        enc_ids = {id(p) for k, p in model.named_parameters() if k in placed}
+    elif hasattr(model, "encoder"):
+        enc_ids = {id(p) for p in model.encoder.parameters()}
+    else:
+        raise ValueError("finetune_groups needs the encoder file, or a model with an .encoder attribute")
+    enc = [p for p in model.parameters() if id(p) in enc_ids and p.requires_grad]
+    rest = [p for p in model.parameters() if id(p) not in enc_ids and p.requires_grad]
+    return [{"params": enc, "lr": lr * factor, "name": "encoder"}, {"params": rest, "lr": lr, "name": "rest"}]
+
+
+def finetune_scheduler(optimizer: Any, total_steps: int, file: str | os.PathLike[str] | None = None,
+                       schedule: str | None = None, warmup_steps: int | None = None) -> Any:
+    """A ``torch.optim.lr_scheduler.LambdaLR`` with :func:`lr_factor` (step it once per optimizer step).
+
+    ``schedule`` and ``warmup_steps`` default to the file's recommendation (its
+    ``warmup_fraction`` of ``total_steps``).
+    """
+    import torch
+
+    rec = recommendation(file)
+    kind = schedule or rec["schedule"]
+    warm = int(round(rec["warmup_fraction"] * total_steps)) if warmup_steps is None else int(warmup_steps)
+    return torch.optim.lr_scheduler.LambdaLR(optimizer, lambda k: lr_factor(k, total_steps, kind, warm))
