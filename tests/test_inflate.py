@@ -164,3 +164,34 @@ def test_the_reference_unet_in_3d_takes_the_2d_file_and_its_groups_cover_every_p
     assert enc["lr"] == pytest.approx(1e-4) and rest["lr"] == 1e-3
     assert len(enc["params"]) + len(rest["params"]) == len(list(net.parameters()))
     assert tuple(net(torch.zeros(1, 1, 8, 16, 16)).shape) == (1, 3, 8, 16, 16)
+
+
+def test_cli_inflate_writes_the_checkpoint_nnunets_own_loader_takes(corpus2d, tmp_path):
+    """nnunetv2's load_pretrained_weights (what nnUNetv2_train -pretrained_weights calls) is the reference."""
+    pytest.importorskip("nnunetv2")
+    import json
+
+    from nnunetv2.run.load_pretrained_weights import load_pretrained_weights
+    from nnunetv2.utilities.get_network_from_plans import get_network_from_plans
+
+    from tiny_plans import PLANS
+    from warmstart.cli import main
+    from warmstart.encoders.nnunet import architecture_from_plans
+
+    plans = tmp_path / "nnUNetPlans.json"
+    plans.write_text(json.dumps(PLANS))
+    path = _file(corpus2d, tmp_path, "nnunet", {"plans": str(plans), "configuration": "2d"})
+    out = tmp_path / "pretrained.pth"
+    assert main(["-q", "inflate", str(path), "--plans", f"{plans}:3d_fullres", "-o", str(out), "--rule", "center"]) == 0
+    a = architecture_from_plans(PLANS, "3d_fullres")
+    net = get_network_from_plans(a["network_class_name"], a["arch_kwargs"], a["_kw_requires_import"], 1, 3,
+                                 allow_init=True, deep_supervision=False)
+    load_pretrained_weights(net, str(out))
+    enc2d = ws.load_encoder(path).eval()
+    img, vol = _constant_along_z()
+    net.eval()
+    with torch.no_grad():
+        torch.testing.assert_close(net.encoder(vol)[0][:, :, 3], enc2d(img)[0], atol=1e-5, rtol=1e-4)
+    # A configuration of other widths is refused, naming the first tensor that does not fit.
+    assert main(["-q", "inflate", str(path), "--plans", f"{plans}:3d_fullres_wide", "-o", str(tmp_path / "w.pth")]) == 1
+    assert not (tmp_path / "w.pth").exists()

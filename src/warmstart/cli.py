@@ -151,6 +151,20 @@ def build_parser() -> argparse.ArgumentParser:
     exp.add_argument("--seed", type=int, default=0, help="with --for nnunet: seed of the decoder's initialization")
     exp.add_argument("--json", action="store_true")
 
+    inf = sub.add_parser("inflate", help="a 2-D nnU-Net encoder file as the 3-D checkpoint nnU-Net's -pretrained_weights loads",
+                         description="Inflate the kernels of a 2-D encoder file of an nnU-Net network (pretrain --encoder "
+                                     "PLANS.json:2d) into a 3-D configuration of the same plans, with the same stages "
+                                     "and widths, and write the checkpoint nnU-Net's -pretrained_weights option "
+                                     "loads. mean: each k x k kernel repeated along Z and divided by k; center: the "
+                                     "2-D kernel in the middle plane, zeros elsewhere.")
+    inf.add_argument("file", metavar="FILE", help="the 2-D encoder file")
+    inf.add_argument("--plans", required=True, metavar="PLANS.json:CONFIGURATION",
+                     help="the plans file and its 3-D configuration, e.g. nnUNetPlans.json:3d_fullres")
+    inf.add_argument("-o", "--output", required=True, metavar="PTH", help="checkpoint to write (e.g. pretrained.pth)")
+    inf.add_argument("--rule", choices=["mean", "center"], default="mean")
+    inf.add_argument("--seed", type=int, default=0, help="seed of nnU-Net's initialization of the decoder")
+    inf.add_argument("--json", action="store_true")
+
     ins = sub.add_parser("inspect", help="summarize an encoder file (and write its model card)",
                          description="Print what an encoder file holds: encoder, input contract, corpus and training.")
     ins.add_argument("file", metavar="FILE")
@@ -437,8 +451,33 @@ def cmd_export(args: argparse.Namespace) -> int:
     else:
         from .export.card import summary_text
 
+        from .finetune import fine_tuning_lines
+
         print(f"{path}: {m['tensors']['count']} tensors, {path.stat().st_size / 1e6:.1f} MB")
         print(summary_text(m))
+        for line in fine_tuning_lines(m.get("fine_tuning")):
+            print(f"fine-tuning: {line}")
+    if m["corpus"].get("clinical"):
+        print(CLINICAL_CAUTION, file=sys.stderr)
+    return 0
+
+
+def cmd_inflate(args: argparse.Namespace) -> int:
+    from .errors import ExportError
+    from .export.nnunet_file import inflate_for_nnunet
+    from .finetune import NNUNET_LINE
+
+    plans, sep, configuration = args.plans.rpartition(":")
+    if not sep or not plans or not configuration:
+        raise ExportError(f"--plans {args.plans}: give the plans file and its 3-D configuration, e.g. "
+                          "nnUNetPlans.json:3d_fullres")
+    path, m = inflate_for_nnunet(args.file, plans, configuration, args.output, rule=args.rule, seed=args.seed)
+    if args.json:
+        _print_json({"path": str(path), "manifest": m})
+    else:
+        print(f"{path}: {m['inflated']['kernels']} kernels of {args.file} inflated ({args.rule}) into "
+              f"{configuration}; {m['tensors']['count']} tensors")
+        print(f"train with: {NNUNET_LINE.replace('pretrained.pth', str(path))}")
     if m["corpus"].get("clinical"):
         print(CLINICAL_CAUTION, file=sys.stderr)
     return 0
@@ -572,7 +611,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     warnings.filterwarnings("ignore", message=r".*torch\.jit\.interface.*deprecated", category=FutureWarning)
 
     handlers = {"scan": cmd_scan, "demo": cmd_demo, "pretrain": cmd_pretrain, "export": cmd_export, "bench": cmd_bench,
-                "inspect": cmd_inspect, ("corpus", "build"): cmd_corpus_build, ("corpus", "show"): cmd_corpus_show,
+                "inspect": cmd_inspect, "inflate": cmd_inflate, ("corpus", "build"): cmd_corpus_build, ("corpus", "show"): cmd_corpus_show,
                 ("corpus", "merge"): cmd_corpus_merge}
     key = (args.command, args.corpus_command) if args.command == "corpus" else args.command
     # The library's warnings (a bench rerun that makes runs again, data unlike an encoder file's,

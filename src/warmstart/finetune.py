@@ -21,7 +21,8 @@ import math
 import os
 from typing import Any
 
-__all__ = ["RECOMMENDED", "NNUNET_LINE", "finetune_groups", "finetune_scheduler", "lr_factor", "recommendation"]
+__all__ = ["RECOMMENDED", "NNUNET_LINE", "finetune_groups", "finetune_scheduler", "lr_factor", "recommendation",
+           "fine_tuning_section", "fine_tuning_lines"]
 
 # What tools/diagnose_finetune.py measured as best for warm starts (README, "Fine-tuning a warm start").
 RECOMMENDED: dict[str, Any] = {
@@ -36,6 +37,33 @@ RECOMMENDED: dict[str, Any] = {
 # checkpoint warmstart writes (README, "nnU-Net").
 NNUNET_LINE = ("nnUNetv2_train DATASET CONFIGURATION FOLD -tr nnUNetTrainer_warmup "
                "-pretrained_weights pretrained.pth")
+
+
+NNUNET_WHY = ("nnU-Net's plain -pretrained_weights path keeps its from-scratch schedule (SGD, lr 1e-2, no warm-up), "
+              "whose first large steps can undo what a pretrained encoder learned; the warm-up trainer ramps the "
+              "learning rate up over the first epochs, which the nnU-Net team itself uses for pretrained networks")
+
+
+def fine_tuning_section(spec: dict[str, Any]) -> dict[str, Any]:
+    """The manifest's ``fine_tuning`` entry: :data:`RECOMMENDED`, and for nnU-Net networks the
+    ``nnUNetv2_train`` line and why."""
+    out: dict[str, Any] = dict(RECOMMENDED)
+    if spec.get("name") == "nnunet":
+        out["nnunet"] = {"command": NNUNET_LINE, "why": NNUNET_WHY}
+    return out
+
+
+def fine_tuning_lines(section: dict[str, Any] | None) -> list[str]:
+    """The recommendation in words (encoder card, export message)."""
+    r = {**RECOMMENDED, **(section or {})}
+    lines = [f"{r['optimizer']} with the encoder at {r['encoder_lr_factor']:g} x the learning rate, a linear warm-up "
+             f"over the first {r['warmup_fraction']:.0%} of the steps, then {r['schedule']} decay; "
+             f"{r['class_aware_fraction']:.0%} of each batch's patches centred on a labelled class "
+             "(warmstart.finetune_groups and warmstart.finetune_scheduler set up the first three)"]
+    nn = (section or {}).get("nnunet")
+    if nn:
+        lines.append(f"nnU-Net: {nn['command']} ({nn['why']})")
+    return lines
 
 
 def lr_factor(step: int, total: int, schedule: str = "cosine", warmup: int = 0) -> float:

@@ -45,6 +45,7 @@ class Contender:
     leakage: list[str] = field(default_factory=list)
     mismatch: list[str] = field(default_factory=list)
     file_digest: str | None = None  # the file's digest.sha256 (tensors and manifest)
+    inflate: str | None = None  # a 2-D file in a 3-D network, its kernels inflated by this rule
 
     def to_dict(self) -> dict[str, Any]:
         return dict(self.__dict__)
@@ -68,6 +69,9 @@ def _contenders(encoders: Sequence[str | os.PathLike[str]], s: BenchSettings, pa
     specs: dict[str, dict[str, Any]] = {}
     for _, m in files:
         specs.setdefault(_spec_key(m["encoder"]["spec"]), m["encoder"]["spec"])
+    inflated = _inflated_specs(files, s)
+    for spec in inflated.values():
+        specs.setdefault(_spec_key(spec), spec)
     if not files:
         from ..encoders import build_encoder
 
@@ -99,11 +103,26 @@ def _contenders(encoders: Sequence[str | os.PathLike[str]], s: BenchSettings, pa
             notes.append(f"bench.decoder_norm {s.decoder_norm!r} is not the file's decoder norm "
                          f"{decoder['norm']!r}: its decoder is not used")
         label = f"warm start {Path(f).name}" + (" (encoder + decoder)" if "decoder" in parts else "")
+        common = dict(normalization=f"{intensity_line(m)}, then (x - {st['mean']:.4g}) / {st['std']:.4g} (from the file)",
+                      leakage=[p.name for p in pairs if p.sha256 in known],
+                      file_digest=(m.get("digest") or {}).get("sha256") or m["tensors"]["sha256"])
         out.append(Contender(cid, label, m["encoder"]["spec"], f, randoms[_spec_key(m["encoder"]["spec"])],
-                             f"{intensity_line(m)}, then (x - {st['mean']:.4g}) / {st['std']:.4g} (from the file)",
-                             parts=parts, leakage=[p.name for p in pairs if p.sha256 in known], mismatch=notes,
-                             file_digest=(m.get("digest") or {}).get("sha256") or m["tensors"]["sha256"]))
+                             parts=parts, mismatch=notes, **common))
+        if f in inflated:
+            spec3 = inflated[f]
+            out.append(Contender(f"{cid}-inflated", f"warm start {Path(f).name} inflated ({s.inflate})", spec3, f,
+                                 randoms[_spec_key(spec3)], parts=list(parts), mismatch=list(notes),
+                                 inflate=s.inflate, **common))
     return out
+
+
+def _inflated_specs(files: Sequence[tuple[str, dict[str, Any]]], s: BenchSettings) -> dict[str, dict[str, Any]]:
+    """With ``bench.inflate``: each 2-D file's 3-D network spec (:func:`warmstart.export.inflate.spec_in_3d`)."""
+    from ..export.inflate import spec_in_3d
+
+    if not s.inflate:
+        return {}
+    return {f: spec_in_3d(m["encoder"]["spec"]) for f, m in files if _dims(m["encoder"]["spec"]) == 2}
 
 
 def _dims(spec: dict[str, Any]) -> int:
@@ -140,8 +159,25 @@ def _model_factory(c: Contender, classes: int, s: BenchSettings) -> Callable[[],
     if c.file is None:
         spec = {**c.spec, "params": {**c.spec["params"], "in_channels": 1}}
         return lambda: UNet(spec, classes, s.decoder_norm)
+    if c.inflate:
+        return inflated_factory(c.file, c.spec, classes, s, c.inflate, "decoder" in c.parts)
     return lambda: UNet.from_file(c.file, classes, in_channels=1, decoder_norm=s.decoder_norm,
                                   decoder="decoder" in c.parts)
+
+
+def inflated_factory(file: str | os.PathLike[str], spec3d: dict[str, Any], classes: int, s: BenchSettings,
+                     rule: str = "mean", decoder: bool = False) -> Callable[[], Any]:
+    """Builds the reference U-Net on the 3-D spec and warm-starts it from the 2-D file, inflated."""
+    from ..export.load import warm_start
+    from ..unet import UNet
+
+    spec = {**spec3d, "params": {**spec3d["params"], "in_channels": 1}}
+
+    def make() -> Any:
+        net = UNet(spec, classes, s.decoder_norm)
+        warm_start(net, file, layout="warmstart", inflate=rule, decoder=decoder or False)
+        return net
+    return make
 
 
 def _device(s: BenchSettings) -> Any:

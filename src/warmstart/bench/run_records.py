@@ -47,7 +47,8 @@ def made_with(contender: Any, split: Any, n: int, settings: dict[str, Any], pair
     held = {"test": split.test_regions, "val": split.val_regions} if cubes else {"test": split.test, "val": split.val}
     record = {
         "settings": {k: v for k, v in sorted(settings.items()) if k not in SPEED_ONLY},
-        "contender": {"spec": contender.spec, "file_digest": contender.file_digest, "parts": list(contender.parts)},
+        "contender": {"spec": contender.spec, "file_digest": contender.file_digest, "parts": list(contender.parts),
+                      **({"inflate": contender.inflate} if getattr(contender, "inflate", None) else {})},
         "labels": [{"name": p.name, "sha256": p.sha256} for p in pairs],
         "classes": classes,
         "training_set": {"kind": split.kind, "units": (split.cubes if cubes else split.tiles)[:n], **held},

@@ -64,6 +64,10 @@ class BenchSettings:
     learned_dice : float
         A class counts as learned by a run when its test Dice reaches this; runs that missed a
         class are flagged in the report.
+    inflate : {"mean", "center"}, optional
+        With a cubes training set: every 2-D file also enters as a 3-D contender, its kernels
+        inflated into the 3-D version of its network (:mod:`warmstart.export.inflate`), paired
+        with random init of that 3-D network.
     freeze_encoder_epochs : int
         Keep the encoder fixed for the first N epochs (every contender alike).
     val_slices, test_slices : int
@@ -127,6 +131,7 @@ class BenchSettings:
     plateau_epochs: int = 3
     plateau_margin: float = 0.01
     learned_dice: float = 0.1
+    inflate: str | None = None
     val_slices: int = 4
     test_slices: int = 8
     gap_slices: int = 2
@@ -177,6 +182,8 @@ class BenchSettings:
             raise RecipeError(f"bench.class_aware_fraction must be in [0, 1], got {self.class_aware_fraction}")
         if self.plateau_epochs < 1 or self.plateau_margin < 0 or not 0 < self.learned_dice <= 1:
             raise RecipeError("bench.plateau_epochs must be >= 1, plateau_margin >= 0, learned_dice in (0, 1]")
+        if self.inflate not in (None, "mean", "center"):
+            raise RecipeError(f"bench.inflate must be mean or center (or left out), got {self.inflate!r}")
         if self.device not in ("auto", "cpu", "cuda"):
             raise RecipeError(f"bench.device must be auto, cpu or cuda, got {self.device!r}")
 

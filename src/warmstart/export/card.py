@@ -142,6 +142,9 @@ def model_card(m: Mapping[str, Any], title: str = "Encoder") -> str:
                    "\n\nThe file holds the U-Net decoder too: `warmstart.UNet.from_file` and segmentation_models_pytorch's "
                    "`Unet` with the same decoder widths and `decoder_interpolation='bilinear'` load both; other networks "
                    "get the encoder alone (`warm_start`'s report says which)." if m.get("decoder") else "")
+    from ..finetune import fine_tuning_lines
+
+    fine_tuning = "\n".join(f"- {line}" for line in fine_tuning_lines(m.get("fine_tuning")))
     return f"""# {title}: {e['spec']['name']} pretrained with {t['method']}
 
 A self-supervised image encoder trained by warmstart {m['warmstart_version']} on a facility's own
@@ -176,6 +179,10 @@ unlabeled images, meant as the warm start of a segmentation network (U-Net encod
 Initialization of the encoder{' and decoder' if m.get('decoder') else ''} of a segmentation network for images like the corpus's (same kind of
 instrument, material and voxel size), fine-tuned on labelled data. Check the gain on your own
 labelled data (`warmstart bench`) before relying on it.{decoder_use}
+
+## Fine-tuning
+
+{fine_tuning}
 
 ## Limitations
 

@@ -53,6 +53,7 @@ import numpy as np
 
 from .. import __version__
 from ..errors import ExportError
+from ..finetune import fine_tuning_section
 
 __all__ = ["FORMAT", "MANIFEST_VERSION", "build_manifest", "check_manifest", "intensity_section",
            "histogram_percentiles", "patch_voxel_ranges", "timm_config", "spatial_dims"]
@@ -197,6 +198,7 @@ def build_manifest(*, spec: Mapping[str, Any], first_conv: str, weights: str, co
         "timm": timm_config(spec["name"], channels, patch, mean, std, first_conv) if dims == 2 else None,
         "parts": ["encoder", "decoder"] if decoder else ["encoder"],
         "decoder": dict(decoder) if decoder else None,
+        "fine_tuning": fine_tuning_section(dict(spec)),
     }
 
 

@@ -25,7 +25,7 @@ from ..errors import ExportError
 from .file import METADATA_KEY, _manifest, manifest_digest, tensor_digest
 from .pack import packed_run
 
-__all__ = ["export_for_nnunet", "read_nnunet_file", "is_nnunet_file", "WEIGHTS_KEY"]
+__all__ = ["export_for_nnunet", "inflate_for_nnunet", "read_nnunet_file", "is_nnunet_file", "WEIGHTS_KEY"]
 
 WEIGHTS_KEY = "network_weights"  # what nnU-Net's loader reads
 
@@ -94,8 +94,6 @@ def export_for_nnunet(run: str | os.PathLike[str], out: str | os.PathLike[str], 
                 raise RuntimeError(f"decoder keys not filled {left[:3]}, not placed {unexpected[:3]}")
     except RuntimeError as e:
         raise ExportError(f"{run}: the trained network does not fit the nnU-Net network its spec describes ({e})") from e
-    state = {k: v.detach().cpu().contiguous().clone() for k, v in net.state_dict().items()}
-    np_state = {k: v.numpy() for k, v in state.items()}
     full = dict(manifest)
     full["nnunet"] = {
         "checkpoint_key": WEIGHTS_KEY, "network_class_name": params["architecture"]["network_class_name"],
@@ -107,10 +105,19 @@ def export_for_nnunet(run: str | os.PathLike[str], out: str | os.PathLike[str], 
                     f"(the network's initialize, seed {int(seed)})"),
         "not_loaded_by_nnunet": ".seg_layers. (the segmentation layers: nnU-Net keeps its own)",
     }
+    return _write(net, full, Path(out))
+
+
+def _write(net: Any, manifest: dict[str, Any], path: Path) -> tuple[Path, dict[str, Any]]:
+    """The network's state dict and the manifest (its tensors and digest made anew), written atomically."""
+    import torch
+
+    state = {k: v.detach().cpu().contiguous().clone() for k, v in net.state_dict().items()}
+    np_state = {k: v.numpy() for k, v in state.items()}
+    full = dict(manifest)
     full["tensors"] = {"count": len(np_state), "sha256": tensor_digest(np_state),
                        "parameters": int(sum(a.size for k, a in np_state.items() if not k.endswith("num_batches_tracked")))}
     full["digest"] = manifest_digest(full)
-    path = Path(out)
     _check_target(path)
     tmp = path.with_name(f".{path.name}.partial")
     try:
@@ -123,6 +130,62 @@ def export_for_nnunet(run: str | os.PathLike[str], out: str | os.PathLike[str], 
             raise ExportError(f"{path}: cannot be written ({err.strerror or err}); nothing was left behind") from err
         raise
     return path, read_nnunet_file(path)[0]
+
+
+def inflate_for_nnunet(file: str | os.PathLike[str], plans: str | os.PathLike[str], configuration: str,
+                       out: str | os.PathLike[str], *, rule: str = "mean", seed: int = 0) -> tuple[Path, dict[str, Any]]:
+    """A 2-D nnU-Net encoder file inflated into a 3-D configuration, as nnU-Net's ``-pretrained_weights`` checkpoint.
+
+    Parameters
+    ----------
+    file : path
+        An encoder file of a 2-D nnU-Net network (``pretrain --encoder PLANS.json:2d``).
+    plans, configuration : path, str
+        The nnU-Net plans file and its 3-D configuration (same stages and widths as the file's).
+    out : path
+        The checkpoint to write (atomically).
+    rule : {"mean", "center"}
+        How 2-D kernels become 3-D (:mod:`.inflate`).
+    seed : int
+        Seed of nnU-Net's initialization of the decoder (not pretrained here).
+
+    Raises
+    ------
+    WeightsMismatchError
+        The file's stages or widths differ from the configuration's (the message names the
+        first tensor that does not fit).
+    """
+    import torch
+
+    from ..encoders.nnunet import architecture_from_plans, build_network
+    from .file import read_manifest
+    from .load import warm_start
+
+    m = read_manifest(file)
+    if m["encoder"]["spec"]["name"] != "nnunet":
+        raise ExportError(f"{file}: inflating for nnU-Net needs a file of a 2-D nnU-Net network (pretrain --encoder "
+                          f"PLANS.json:2d); this file's encoder is {m['encoder']['spec']['name']!r}")
+    try:
+        arch = architecture_from_plans(plans, configuration)
+    except ValueError as e:
+        raise ExportError(f"{plans}: {e}") from e
+    torch.manual_seed(int(seed))
+    net = build_network(arch, int(m["encoder"]["spec"]["params"].get("in_channels", 1)))
+    rep = warm_start(net, file, layout="nnunet", inflate=rule, decoder=False)
+    full = dict(m)
+    full["encoder"] = {**m["encoder"], "spec": {**m["encoder"]["spec"], "params": {
+        **m["encoder"]["spec"]["params"], "architecture": arch, "configuration": configuration, "spatial_dims": 3}}}
+    full["inflated"] = {"from": Path(file).name, "rule": rule, "kernels": len(rep.inflated),
+                        "file_digest": (m.get("digest") or {}).get("sha256")}
+    full["nnunet"] = {
+        "checkpoint_key": WEIGHTS_KEY, "network_class_name": arch["network_class_name"], "configuration": configuration,
+        "in_channels": int(m["encoder"]["spec"]["params"].get("in_channels", 1)), "pretrained": ["encoder"],
+        "decoder": f"not pretrained: nnU-Net's own initialization of a new network (seed {int(seed)})",
+        "not_loaded_by_nnunet": ".seg_layers. (the segmentation layers: nnU-Net keeps its own)",
+    }
+    full.pop("decoder", None)
+    full["parts"] = ["encoder"]
+    return _write(net, full, Path(out))
 
 
 def _check_target(path: Path) -> None:
