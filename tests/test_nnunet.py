@@ -135,6 +135,25 @@ def test_the_nnunet_file_holds_only_tensors_and_says_its_decoder_is_not_pretrain
     assert "not pretrained: nnU-Net's own initialization" in out and "PlainConvUNet" in out
 
 
+def test_the_nnunet_line_and_the_trainer_it_was_measured_against_are_nnunets_and_the_card_says_them(run3d):
+    """The warm-up trainer the recommendation was measured against must exist in the installed
+    nnunetv2 (the reference: nnunetv2 2.8's own lr_schedule variants)."""
+    pytest.importorskip("nnunetv2")
+    import importlib
+
+    from warmstart.export.card import model_card
+    from warmstart.export.nnunet_file import read_nnunet_file
+    from warmstart.finetune import NNUNET_TRIED
+
+    m, _ = read_nnunet_file(run3d / "pretrained.pth")
+    command = m["fine_tuning"]["nnunet"]["command"]
+    mod = importlib.import_module(f"nnunetv2.training.nnUNetTrainer.variants.lr_schedule.{NNUNET_TRIED}")
+    assert getattr(mod, NNUNET_TRIED).__name__ == NNUNET_TRIED
+    assert command.startswith("nnUNetv2_train") and "-pretrained_weights" in command
+    assert command in model_card(m) and NNUNET_TRIED in model_card(m)
+    assert ws.read_manifest(run3d / "enc.safetensors")["fine_tuning"]["nnunet"]["command"] == command
+
+
 def test_warm_start_into_nnunet_networks_and_refusals_naming_the_first_mismatch(run3d):
     file = run3d / "enc.safetensors"
     net = _nnunet_network("3d_fullres")

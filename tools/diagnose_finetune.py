@@ -13,6 +13,8 @@ variation                 what changes (for both contenders unless it says "warm
 base                      nothing
 lr-low / lr-high          the learning rate / 3, x 3
 sgd                       SGD, Nesterov momentum 0.99, lr 1e-2 (common practice for nnU-Net)
+nnunet-plain              SGD as above with poly decay and no warm-up: nnU-Net's -pretrained_weights path
+nnunet-warmup             the same after a linear warm-up over 10 % of the steps (its warm-up trainer)
 constant / poly           the schedule after the warm-up (cosine in the base)
 warmup                    a linear warm-up over the first 10 % of the steps
 uniform                   every patch placed uniformly (no class-aware patches)
@@ -48,6 +50,8 @@ VARIATIONS: dict[str, tuple[dict[str, Any], dict[str, Any], bool]] = {
     "lr-low": ({"lr": "/3"}, {}, False),
     "lr-high": ({"lr": "*3"}, {}, False),
     "sgd": ({"optimizer": "sgd", "lr": 1e-2}, {}, False),
+    "nnunet-plain": ({"optimizer": "sgd", "lr": 1e-2, "schedule": "poly"}, {}, False),
+    "nnunet-warmup": ({"optimizer": "sgd", "lr": 1e-2, "schedule": "poly", "warmup_steps": "10%"}, {}, False),
     "constant": ({"schedule": "constant"}, {}, False),
     "poly": ({"schedule": "poly"}, {}, False),
     "warmup": ({"warmup_steps": "10%"}, {}, False),
