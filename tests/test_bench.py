@@ -292,7 +292,8 @@ def test_the_html_report_in_a_real_browser(report, tmp_path):
     # headline sentences first, then one table per size, per class, pairs, settings and split
     first = dom.index("class=\"headline\"")
     assert first < dom.index("<table") and saved["labels_saved"][0]["sentence"].split(",")[0] in dom
-    assert dom.count("<table") == len(saved["summary"]) + 6  # sizes, per class, per volume, measurement error, pairs, settings, split
+    # sizes, per class, convergence, per volume, measurement error, pairs, settings, split
+    assert dom.count("<table") == len(saved["summary"]) + 7 and "<h2>Convergence</h2>" in dom
     assert "Measurement error" in dom and "mean thickness (px) error" in dom and "; relative " in dom
     # the measurement errors of one run are those of its own recorded values
     run = saved["runs"][0]
