@@ -212,7 +212,7 @@ def build_parser() -> argparse.ArgumentParser:
     demo.add_argument("-o", "--output", metavar="DIR", help="keep everything in DIR (default: a temporary folder)")
     _deprecated_alias(demo, "--out", "--output", dest="output")
     demo.add_argument("--quick", action="store_true",
-                      help="fewer volumes, a shorter pretraining and a smaller benchmark (1 and 4 tiles or cubes, 3 replicates)")
+                      help="fewer volumes, a shorter pretraining and a smaller benchmark (1 and 4 tiles; with --3d 1 cube; 3 replicates)")
     demo.add_argument("--3d", dest="three_d", action="store_true",
                       help="the volumetric variant: 3-D corpus, pretraining and benchmark, beside a 2-D warm start")
     demo.add_argument("--json", action="store_true")
